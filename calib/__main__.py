@@ -1,0 +1,3 @@
+from calib.cli import main
+
+raise SystemExit(main())

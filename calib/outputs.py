@@ -1,0 +1,48 @@
+"""Atomic output directories: a failed run leaves no half-written files."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+
+@contextlib.contextmanager
+def atomic_directory(target: str | os.PathLike):
+    """Yield a temporary directory beside ``target``; on success it replaces ``target``.
+
+    On any exception the temporary directory is removed and ``target`` is untouched.
+    Files the caller writes must go inside the yielded path.
+    """
+    target = Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=target.parent))
+    try:
+        yield tmp
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    old = None
+    if target.exists():
+        old = target.parent / f".{target.name}.old-{os.getpid()}"
+        os.replace(target, old)
+    os.replace(tmp, target)
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+
+
+def atomic_file(target: str | os.PathLike, data: bytes | str) -> None:
+    """Write ``data`` to ``target`` through a temporary file and a rename."""
+    target = Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", dir=target.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data.encode() if isinstance(data, str) else data)
+        os.replace(tmp, target)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
