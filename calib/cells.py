@@ -302,3 +302,22 @@ def cells_from_arrays(
         effort_unit={g: "m2" for g in gears},
         report={"zero_total_cells_dropped": int((~keep).sum()), "n_cells": int(keep.sum())},
     )
+
+
+def factor_support(cells: Cells) -> pd.DataFrame:
+    """How much data stands behind each non-reference gear x species factor.
+
+    Returns one row per gear (not the reference) x species with
+    ``n_groups``: cells where this gear fished together with another gear and the
+    species' group total was > 0, and ``n_caught``: fish of the species this gear
+    caught in those cells.
+    """
+    rows = []
+    multi = cells.present.sum(axis=1) >= 2
+    for g in range(1, cells.n_gears):
+        used = cells.present[:, g] & multi
+        n_groups = np.bincount(cells.cell_species[used], minlength=cells.n_species)
+        n_caught = np.bincount(cells.cell_species[used], weights=cells.counts[used, g], minlength=cells.n_species)
+        for s in range(cells.n_species):
+            rows.append((cells.gears[g], cells.species[s], int(n_groups[s]), int(n_caught[s])))
+    return pd.DataFrame(rows, columns=["gear", "species", "n_groups", "n_caught"])

@@ -1,0 +1,189 @@
+"""Command line: a thin skin over the public functions. No statistics here.
+
+Exit codes: 0 success, 1 bad input (every problem listed, nothing written),
+2 usage error (argparse's own convention).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import textwrap
+
+from calib import __version__
+from calib.errors import InputError
+
+DESCRIPTION = """\
+calib puts catches taken with different gears onto one footing.
+
+Calibration experiments (paired tows, side-by-side deployments) show how each
+gear's catch of each species relates to a reference gear. calib fits those
+conversion factors, checks them, and (in later steps) converts survey records
+to reference-gear units with the uncertainty carried along.
+
+Typical order:  calib check  ->  calib fit  ->  (convert, series, trend, report)
+Try it on invented data first:  calib demo --out demo_output
+"""
+
+CAUTION = (
+    "Factors hold only for the gears, sizes, habitats and seasons of the calibration "
+    "study. Defer to your survey program's standards and qualified review before "
+    "management use."
+)
+
+
+class _Formatter(argparse.RawDescriptionHelpFormatter):
+    """Keeps paragraph breaks in descriptions; shows a default only where there is one."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if action.default not in (None, False, argparse.SUPPRESS) and action.option_strings:
+            text += " (default: %(default)s)"
+        return text
+
+
+def _add_tables(p: argparse.ArgumentParser, lengths: bool = True) -> None:
+    p.add_argument("--hauls", required=True, metavar="FILE",
+                   help="hauls table (CSV or Parquet): one row per tow, seine haul or trap set")
+    p.add_argument("--catches", required=True, metavar="FILE",
+                   help="catches table: one row per haul and species caught (missing species = zero)")
+    if lengths:
+        p.add_argument("--lengths", metavar="FILE", default=None,
+                       help="optional lengths table: measured fish (haul_id, species, length_mm, n)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="calib", description=DESCRIPTION, formatter_class=_Formatter,
+                                     epilog=CAUTION)
+    parser.add_argument("--version", action="version", version=f"calib {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser(
+        "check", formatter_class=_Formatter,
+        help="validate the tables and summarise what is in them",
+        description=textwrap.dedent("""\
+            Validate the hauls, catches and (optional) lengths tables and summarise them:
+            hauls per gear, calibration groups per gear combination, each species' total
+            catch and the number of groups that caught it, and warnings (rare species,
+            gears not linked to the reference, groups on different days or far apart).
+            Exits 1 with a list of problems (file, row, column, fix) if anything is wrong."""),
+    )
+    _add_tables(p)
+    p.add_argument("--reference", metavar="GEAR", default=None,
+                   help="reference gear, to check that every gear is linked to it")
+    p.add_argument("--min-groups", type=int, default=10, metavar="N",
+                   help="warn about species caught in fewer calibration groups than this")
+
+    p = sub.add_parser(
+        "fit", formatter_class=_Formatter,
+        help="fit conversion factors from calibration groups",
+        description=textwrap.dedent("""\
+            Fit conversion factors from calibration groups (hauls sharing a pair_id).
+            factor = expected cpue of the reference gear / cpue of the gear, at the same
+            place and time. Writes OUT/factors.csv, OUT/checks.csv, OUT/posterior.nc and
+            OUT/manifest.json. The default is the Bayesian hierarchical model: each group's
+            total catch of a species is split among the gears that fished there
+            (Dirichlet-multinomial, i.e. beta-binomial for two gears), species share
+            information per gear. Every factor gets a status: ok, warn or fail."""),
+    )
+    _add_tables(p)
+    p.add_argument("--reference", required=True, metavar="GEAR",
+                   help="the gear whose units everything is converted to")
+    p.add_argument("--out", required=True, metavar="DIR", help="directory to write the factor set to")
+    p.add_argument("--method", choices=["hierarchical", "ratio", "glm"], default="hierarchical",
+                   help="hierarchical: Bayesian model (default); ratio: ratio of mean cpue with a "
+                        "bootstrap over groups; glm: conditional logit maximum likelihood (quick look)")
+    p.add_argument("--overdispersion", choices=["dirichlet-multinomial", "none"],
+                   default="dirichlet-multinomial",
+                   help="'none' assumes no tow-to-tow patchiness (plain multinomial); for comparison only")
+    p.add_argument("--pooling", choices=["partial", "none"], default="partial",
+                   help="'none' fits every species on its own with vague priors")
+    p.add_argument("--species-groups", metavar="FILE", default=None,
+                   help="optional table (species, group): species borrow strength only within a group, "
+                        "e.g. fish apart from crustaceans")
+    p.add_argument("--draws", type=int, default=1000, help="posterior draws kept per chain")
+    p.add_argument("--tune", type=int, default=1000, help="warm-up iterations per chain (discarded)")
+    p.add_argument("--chains", type=int, default=2, help="independent sampler chains")
+    p.add_argument("--seed", type=int, default=20261202, help="random seed; the same seed gives the same factors")
+    p.add_argument("--interval", type=float, default=0.9, help="central interval level for factor_lower/upper")
+    p.add_argument("--bootstrap-reps", type=int, default=1000, help="bootstrap replicates for --method ratio")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    p = sub.add_parser(
+        "demo", formatter_class=_Formatter,
+        help="run the whole job on the bundled invented demo data",
+        description=textwrap.dedent("""\
+            Run check and fit on the bundled demo data (an invented estuary with three
+            partner programs, a legacy and a new otter trawl, and a beach seine) and print
+            what was found and where the files are. Takes a few minutes on 2 cores."""),
+    )
+    p.add_argument("--out", required=True, metavar="DIR", help="directory for all demo outputs")
+    p.add_argument("--draws", type=int, default=1000, help="posterior draws per chain")
+    p.add_argument("--tune", type=int, default=1000, help="warm-up iterations per chain")
+    p.add_argument("--seed", type=int, default=20261202, help="random seed")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    return parser
+
+
+def _cmd_check(args) -> int:
+    from calib.inspect import summarize
+    from calib.tables import load_tables
+
+    tables = load_tables(args.hauls, args.catches, args.lengths)
+    summary = summarize(tables, reference=args.reference, min_groups=args.min_groups)
+    print(summary.text())
+    return 0
+
+
+def _cmd_fit(args) -> int:
+    from calib.fitting import fit
+
+    factor_set = fit(
+        args.hauls, args.catches, lengths=args.lengths, reference=args.reference, method=args.method,
+        overdispersion=args.overdispersion, pooling=args.pooling, species_groups=args.species_groups,
+        draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
+        n_boot=args.bootstrap_reps, progressbar=not args.quiet,
+    )
+    factor_set.save(args.out)
+    print(factor_set.summary())
+    print(f"\nWrote {args.out}/factors.csv, checks.csv, posterior.nc, manifest.json")
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from calib.demo import run_demo
+
+    run_demo(args.out, draws=args.draws, tune=args.tune, seed=args.seed, progressbar=not args.quiet)
+    return 0
+
+
+def _check_settings(parser: argparse.ArgumentParser, args) -> None:
+    """Settings that parse but make no sense are usage errors (exit 2)."""
+    interval = getattr(args, "interval", None)
+    if interval is not None and not 0 < interval < 1:
+        parser.error("--interval must be between 0 and 1, e.g. 0.9 for a 90% interval")
+    for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups"):
+        value = getattr(args, name, None)
+        if value is not None and value < (0 if name == "tune" else 1):
+            parser.error(f"--{name.replace('_', '-')} must be a positive whole number")
+
+
+COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "demo": _cmd_demo}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``calib`` console script; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    _check_settings(parser, args)
+    try:
+        return COMMANDS[args.command](args)
+    except InputError as err:
+        print(err.format(), file=sys.stderr)
+        print("Nothing was written.", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

@@ -1,0 +1,70 @@
+"""``calib demo``: the whole job on the bundled, invented demo data.
+
+The demo tables live in ``demo_paired_tows/`` of a source checkout. An installed
+package without that folder regenerates them with the documented simulator
+(``calib.simulate.write_demo``, fixed seed), which writes the same bytes.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+DEMO_FILES = ("hauls.csv", "catches.csv", "lengths.csv")
+
+
+def demo_data_dir(out: Path) -> Path:
+    """Folder holding the demo tables: the checkout's copy, else a fresh one under ``out``."""
+    checkout = Path(__file__).resolve().parent.parent / "demo_paired_tows"
+    if all((checkout / f).exists() for f in DEMO_FILES):
+        return checkout
+    from calib.simulate import write_demo
+
+    target = out / "demo_inputs"
+    write_demo(target)
+    return target
+
+
+def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
+             progressbar: bool = True) -> dict:
+    """Run check and fit on the demo data; print findings and where the files are.
+
+    Returns a dict of the output paths and the FactorSet (for tests and notebooks).
+    """
+    from calib.fitting import fit
+    from calib.inspect import summarize
+    from calib.simulate import DEMO_REFERENCE
+    from calib.tables import load_tables
+
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    started = time.perf_counter()
+    data = demo_data_dir(out)
+    lengths = data / "lengths.csv"
+    groups = data / "species_groups.csv"
+    tables = load_tables(data / "hauls.csv", data / "catches.csv", lengths if lengths.exists() else None)
+
+    print(f"== calib demo: invented data from {data}\n")
+    summary = summarize(tables, reference=DEMO_REFERENCE)
+    summary_text = summary.text()
+    (out / "check.txt").write_text(summary_text + "\n")
+    print(summary_text)
+
+    print(f"\n== Fitting conversion factors to the reference gear '{DEMO_REFERENCE}'\n")
+    factor_set = fit(tables, reference=DEMO_REFERENCE, species_groups=groups if groups.exists() else None,
+                     draws=draws, tune=tune, chains=2, seed=seed, progressbar=progressbar)
+    factors_dir = factor_set.save(out / "factors")
+    print(factor_set.summary())
+
+    elapsed = time.perf_counter() - started
+    table = factor_set.table
+    print("\n== What the demo found")
+    print(f"  {len(table)} factors for {table['species'].nunique()} species and "
+          f"{table['gear'].nunique()} gears; status: "
+          + ", ".join(f"{n} {s}" for s, n in table['status'].value_counts().items()))
+    print(f"  The true factors used to simulate the data are in {data / 'README.md'}.")
+    print("\n== Files")
+    print(f"  check summary:  {out / 'check.txt'}")
+    print(f"  factor set:     {factors_dir}/ (factors.csv, checks.csv, posterior.nc, manifest.json)")
+    print(f"\nDone in {elapsed:.0f} s.")
+    return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data}

@@ -1,0 +1,218 @@
+"""Stage 4: the factor set — conversion factors, their draws and how they were made.
+
+Every fitting method (hierarchical model, ratio, glm) ends here, in one
+:class:`FactorSet` with the same table, the same draws format and the same
+manifest. A factor set is saved as a directory:
+
+    factors.csv    one row per species x gear: the factor cpue_ref / cpue_gear and its checks
+    checks.csv     the per-factor diagnostics behind ``status`` (incl. the posterior predictive p)
+    posterior.nc   ArviZ InferenceData; posterior["theta"] (chain, draw, gear, species),
+                   theta = log(q_gear / q_ref), so factor = exp(-theta)
+    manifest.json  inputs (hashes), model spec, priors, settings, seed, divergences,
+                   software versions, timestamp and the factor-set id
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import platform
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from calib.outputs import atomic_directory
+
+FACTOR_COLUMNS = [
+    "species",
+    "gear",
+    "reference",
+    "effort_unit",
+    "length_mm",
+    "covariate",
+    "level",
+    "factor_median",
+    "factor_lower",
+    "factor_upper",
+    "interval",
+    "n_groups",
+    "n_caught",
+    "rhat",
+    "ess_bulk",
+    "ess_tail",
+    "prior_ratio",
+    "status",
+    "reason",
+]
+
+CAUTION = (
+    "Conversion factors hold only for the gears, size range, habitats and seasons of the "
+    "calibration study they were fitted on. Defer to the survey program's own standards and "
+    "to qualified review before any management use."
+)
+
+
+def file_sha256(path: str | Path) -> str:
+    """SHA-256 of a file's bytes (hex)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def software_versions() -> dict[str, str]:
+    """Versions of Python and the libraries a fit depends on."""
+    import importlib.metadata as md
+
+    versions = {"python": platform.python_version()}
+    for pkg in ("calib", "numpy", "pandas", "scipy", "statsmodels", "pymc", "pytensor", "arviz", "xarray"):
+        try:
+            versions[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:
+            versions[pkg] = "not installed"
+    return versions
+
+
+def factor_set_id(manifest: dict, table: pd.DataFrame) -> str:
+    """Hash of the manifest (without its timestamp) and the factor table.
+
+    The timestamp is left out so the same inputs, settings and seed give the same id.
+    """
+    content = {k: v for k, v in manifest.items() if k not in ("timestamp", "factor_set_id")}
+    payload = json.dumps(content, sort_keys=True, default=str) + table.to_csv(index=False)
+    return "fs-" + hashlib.sha256(payload.encode()).hexdigest()[:16]
+
+
+def summarise_theta_draws(theta, interval: float) -> pd.DataFrame:
+    """Factor median and equal-tailed interval per gear x species from theta draws.
+
+    ``theta``: xarray DataArray (chain, draw, gear, species) of log(q_gear/q_ref).
+    Returns columns gear, species, factor_median, factor_lower, factor_upper.
+    """
+    stacked = theta.stack(sample=("chain", "draw")).transpose("gear", "species", "sample").values
+    factor = np.exp(-stacked)
+    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    with np.errstate(invalid="ignore"):
+        med = np.nanmedian(factor, axis=2) if np.isfinite(factor).any() else np.full(factor.shape[:2], np.nan)
+        lo = np.nanquantile(factor, lo_q, axis=2)
+        hi = np.nanquantile(factor, hi_q, axis=2)
+    rows = []
+    for gi, g in enumerate(theta.coords["gear"].values):
+        for si, s in enumerate(theta.coords["species"].values):
+            rows.append((g, s, med[gi, si], lo[gi, si], hi[gi, si]))
+    return pd.DataFrame(rows, columns=["gear", "species", "factor_median", "factor_lower", "factor_upper"])
+
+
+@dataclass
+class FactorSet:
+    """Fitted conversion factors with their draws and provenance.
+
+    Attributes
+    ----------
+    table : DataFrame with the factors.csv columns (see ``FACTOR_COLUMNS``).
+    checks : DataFrame of per-factor diagnostics (gear, species, rhat, ess, prior_ratio, ppp, ...).
+    idata : arviz.InferenceData; ``idata.posterior["theta"]`` has dims (chain, draw, gear, species).
+    manifest : dict (inputs, spec, priors, settings, seed, divergences, versions, timestamp, id).
+    """
+
+    table: pd.DataFrame
+    checks: pd.DataFrame
+    idata: object
+    manifest: dict
+
+    @property
+    def id(self) -> str:
+        return self.manifest["factor_set_id"]
+
+    @property
+    def reference(self) -> str:
+        return self.manifest["reference"]
+
+    def factor_draws(self, species: str, gear: str) -> np.ndarray:
+        """All draws of the factor cpue_ref/cpue_gear for one species and gear (1-D array)."""
+        if gear == self.reference:
+            n = self.idata.posterior.sizes["chain"] * self.idata.posterior.sizes["draw"]
+            return np.ones(n)
+        theta = self.idata.posterior["theta"].sel(species=species, gear=gear)
+        return np.exp(-theta.values.reshape(-1))
+
+    def summary(self) -> str:
+        """Plain-text summary: what was fitted and each factor with its interval and status."""
+        m = self.manifest
+        level = int(round(100 * m["settings"]["interval"]))
+        lines = [
+            f"Factor set {self.id}  (method: {m['method']}, reference gear: {self.reference})",
+            f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "
+            f"with a non-zero total; {m['cells']['zero_total_cells_dropped']} zero-total cells carried no information.",
+        ]
+        if m.get("divergences") is not None:
+            lines.append(f"  divergent transitions: {m['divergences']}")
+        counts = self.table["status"].value_counts()
+        lines.append(
+            "  status: " + ", ".join(f"{counts.get(s, 0)} {s}" for s in ("ok", "warn", "fail"))
+        )
+        lines.append("")
+        lines.append(f"  {'species':<24} {'gear':<22} {'factor':>8}  {level}% interval       status")
+        for r in self.table.itertuples():
+            if np.isfinite(r.factor_median):
+                est = f"{r.factor_median:8.3g}  {r.factor_lower:7.3g} to {r.factor_upper:<8.3g}"
+            else:
+                est = f"{'—':>8}  {'':19}"
+            lines.append(f"  {r.species:<24} {r.gear:<22} {est}  {r.status}")
+        lines.append("")
+        lines.append("  factor = expected cpue of the reference gear / cpue of this gear at the same place and time.")
+        lines.append("  " + CAUTION)
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        return f"<FactorSet {self.id}: {len(self.table)} factors, reference {self.reference}>"
+
+    def save(self, directory: str | Path) -> Path:
+        """Write factors.csv, checks.csv, posterior.nc and manifest.json atomically into ``directory``."""
+        directory = Path(directory)
+        with atomic_directory(directory) as tmp:
+            self.table.to_csv(tmp / "factors.csv", index=False, float_format="%.6g")
+            self.checks.to_csv(tmp / "checks.csv", index=False, float_format="%.6g")
+            self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+            (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
+        return directory
+
+    @classmethod
+    def load(cls, directory: str | Path) -> "FactorSet":
+        """Read a factor set saved by :meth:`save`."""
+        import arviz as az
+
+        directory = Path(directory)
+        missing = [f for f in ("factors.csv", "posterior.nc", "manifest.json") if not (directory / f).exists()]
+        if missing:
+            from calib.errors import InputError, Problem
+
+            raise InputError(
+                [
+                    Problem(str(directory / f), None, None, "file not found in the factor set directory",
+                            "point --factors at a directory written by `calib fit`")
+                    for f in missing
+                ]
+            )
+        table = pd.read_csv(directory / "factors.csv", keep_default_na=True)
+        for col in ("length_mm", "covariate", "level", "reason"):
+            if col in table and table[col].isna().all():
+                table[col] = table[col].astype(object)
+        checks_path = directory / "checks.csv"
+        checks = pd.read_csv(checks_path) if checks_path.exists() else pd.DataFrame()
+        idata = az.from_netcdf(str(directory / "posterior.nc"), engine="h5netcdf")
+        manifest = json.loads((directory / "manifest.json").read_text())
+        return cls(table=table, checks=checks, idata=idata, manifest=manifest)
+
+
+def load_factors(directory: str | Path) -> FactorSet:
+    """Read a saved factor set directory (see :class:`FactorSet`)."""
+    return FactorSet.load(directory)
+
+
+def utc_timestamp() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")

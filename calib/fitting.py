@@ -1,0 +1,201 @@
+"""Fit conversion factors: the public entry point behind ``calib fit``.
+
+Runs tables -> cells -> (model | baseline) -> diagnostics -> :class:`FactorSet`.
+All methods return the same FactorSet: the same table columns, theta draws with the
+same labels, and a manifest.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from calib import cells as cells_mod
+from calib.errors import InputError
+from calib.factors import (
+    FACTOR_COLUMNS,
+    FactorSet,
+    factor_set_id,
+    file_sha256,
+    software_versions,
+    summarise_theta_draws,
+    utc_timestamp,
+)
+
+METHODS = ("hierarchical", "ratio", "glm")
+
+
+def _as_tables(hauls, catches, lengths):
+    from calib.tables import Tables, load_tables
+
+    if isinstance(hauls, Tables):
+        return hauls
+    return load_tables(hauls, catches, lengths)
+
+
+def _read_species_groups(path) -> dict[str, str] | None:
+    if path is None:
+        return None
+    from calib.errors import Problem
+    from calib.tables import read_table
+
+    frame = read_table(path)
+    missing = [c for c in ("species", "group") if c not in frame.columns]
+    if missing:
+        raise InputError(
+            [Problem(str(path), None, c, "required column missing", "add columns 'species' and 'group'")
+             for c in missing]
+        )
+    return dict(zip(frame["species"].astype(str).str.strip(), frame["group"].astype(str).str.strip()))
+
+
+def fit(
+    hauls,
+    catches=None,
+    *,
+    reference: str,
+    lengths=None,
+    method: str = "hierarchical",
+    overdispersion: str = "dirichlet-multinomial",
+    pooling: str = "partial",
+    species_groups=None,
+    draws: int = 1000,
+    tune: int = 1000,
+    chains: int = 2,
+    seed: int = 20261202,
+    interval: float = 0.9,
+    n_boot: int = 1000,
+    rules=None,
+    progressbar: bool = True,
+) -> FactorSet:
+    """Fit conversion factors from calibration groups.
+
+    Parameters
+    ----------
+    hauls, catches, lengths : paths to the input tables (CSV or Parquet), or a
+        ``calib.tables.Tables`` as ``hauls`` (then ``catches``/``lengths`` are ignored).
+    reference : the reference gear; factors convert every other gear's cpue to it.
+    method : "hierarchical" (Bayesian Dirichlet-multinomial model, the default),
+        "ratio" (ratio of mean cpue, percentile bootstrap over groups) or
+        "glm" (conditional multinomial logit maximum likelihood, Wald interval).
+    overdispersion : "dirichlet-multinomial" (default) or "none" (plain multinomial split).
+    pooling : "partial" (species pooled per gear and pooling group) or "none".
+    species_groups : optional path to a table (species, group) or a dict species -> group.
+    draws, tune, chains, seed : sampler settings (per chain); ``n_boot`` for ratio.
+    interval : central interval level for factor_lower / factor_upper (e.g. 0.9).
+    rules : ``calib.diagnostics.StatusRules`` to override the default status rules.
+
+    Returns
+    -------
+    FactorSet
+    """
+    from calib import diagnostics
+    from calib.tables import complete_zeros, fit_problems
+
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {METHODS}, not {method!r}")
+    if not 0 < interval < 1:
+        raise ValueError("interval must be between 0 and 1, e.g. 0.9")
+    tables = _as_tables(hauls, catches, lengths)
+    problems = fit_problems(tables, reference)
+    if problems:
+        raise InputError(problems)
+    groups_map = species_groups if isinstance(species_groups, dict) or species_groups is None else _read_species_groups(species_groups)
+
+    counts = complete_zeros(tables)
+    cells = cells_mod.build_cells(tables.hauls, counts, reference, species_groups=groups_map)
+    rules = rules or diagnostics.StatusRules()
+
+    settings = {"method": method, "draws": draws, "tune": tune, "chains": chains, "seed": seed,
+                "interval": interval}
+    spec_dict: dict = {}
+    divergences = None
+    if method == "hierarchical":
+        from calib import model as model_mod
+
+        spec = model_mod.ModelSpec(overdispersion=overdispersion, pooling=pooling)
+        spec_dict = spec.to_dict()
+        pm_model = model_mod.build_model(cells, spec)
+        idata = model_mod.sample(pm_model, draws=draws, tune=tune, chains=chains, seed=seed,
+                                 progressbar=progressbar)
+        diag = diagnostics.factor_diagnostics(idata, cells, seed=seed)
+        divergences = int(diagnostics.divergences(idata))
+        summary = summarise_theta_draws(idata.posterior["theta"], interval)
+    else:
+        import arviz as az
+
+        from calib import baselines
+
+        if method == "ratio":
+            result = baselines.fit_ratio(cells, n_boot=n_boot, interval=interval, seed=seed)
+            settings = {"method": method, "n_boot": n_boot, "seed": seed, "interval": interval}
+        else:
+            result = baselines.fit_glm(cells, interval=interval, n_draws=draws, seed=seed)
+            settings = {"method": method, "draws": draws, "seed": seed, "interval": interval}
+        spec_dict = {"method": method, **result.settings}
+        idata = az.InferenceData(posterior=result.theta_draws.to_dataset(name="theta"))
+        point = result.point.copy()
+        summary = point[["gear", "species"]].copy()
+        summary["factor_median"] = np.exp(-point["theta"].to_numpy())
+        summary["factor_lower"] = np.exp(-point["theta_upper"].to_numpy())
+        summary["factor_upper"] = np.exp(-point["theta_lower"].to_numpy())
+        diag = _baseline_diagnostics(cells, point)
+
+    table = _factor_table(cells, summary, diag, divergences, rules, interval)
+    checks = diag.copy()
+
+    manifest = {
+        "tool": "calib",
+        "method": method,
+        "reference": reference,
+        "reference_effort_unit": cells.effort_unit.get(reference, ""),
+        "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
+                   if p is not None and Path(p).exists()},
+        "model": spec_dict,
+        "settings": settings,
+        "status_rules": asdict(rules),
+        "divergences": divergences,
+        "cells": {k: v for k, v in cells.report.items()},
+        "gears": cells.gears,
+        "species": cells.species,
+        "species_groups": groups_map,
+        "versions": software_versions(),
+    }
+    manifest["timestamp"] = utc_timestamp()
+    manifest["factor_set_id"] = factor_set_id(manifest, table)
+    idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
+    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest)
+
+
+def _baseline_diagnostics(cells, point: pd.DataFrame) -> pd.DataFrame:
+    """n_groups / n_caught per factor for the baselines (no sampler diagnostics)."""
+    diag = cells_mod.factor_support(cells)
+    diag = diag.merge(point[["gear", "species", "note"]], on=["gear", "species"], how="left")
+    for col in ("rhat", "ess_bulk", "ess_tail", "prior_ratio", "ppp"):
+        diag[col] = np.nan
+    return diag
+
+
+def _factor_table(cells, summary, diag, divergences, rules, interval) -> pd.DataFrame:
+    from calib.diagnostics import assign_status
+
+    summary = summary[summary["gear"] != cells.reference]
+    status = assign_status(diag, divergences or 0, rules)
+    t = summary.merge(status, on=["gear", "species"], how="left")
+    if "note" in t:
+        # A baseline that could not estimate a factor says why; it is a failure.
+        bad = t["note"].notna() & (t["note"].astype(str) != "") & ~np.isfinite(t["factor_median"])
+        t.loc[bad, "status"] = "fail"
+        t.loc[bad, "reason"] = t.loc[bad, "note"]
+    t["reference"] = cells.reference
+    t["effort_unit"] = t["gear"].map(cells.effort_unit)
+    t["length_mm"] = pd.NA
+    t["covariate"] = pd.NA
+    t["level"] = pd.NA
+    t["interval"] = interval
+    t["reason"] = t["reason"].fillna("")
+    t = t[FACTOR_COLUMNS].sort_values(["species", "gear"]).reset_index(drop=True)
+    return t
