@@ -32,6 +32,8 @@ class Cells:
     effort:       (n_cells, n_gears) float, summed effort in the gear's own effort unit (0 where absent)
     cell_group:   (n_cells,) int index into ``groups``
     cell_species: (n_cells,) int index into ``species``
+    group_present, group_effort: (n_groups, n_gears) for every kept group, including
+                  groups where no species was caught (None when built from cell arrays)
     cell_combo:   (n_cells,) int index into ``combos`` (the set of gears in the group)
     species_pool: (n_species,) int index into ``pool_groups``
     """
@@ -52,6 +54,9 @@ class Cells:
     species_pool: np.ndarray
     effort_unit: dict[str, str]
     report: dict = field(default_factory=dict)
+    # Per calibration group (also groups where nothing was caught): which gears fished, effort.
+    group_present: np.ndarray | None = None
+    group_effort: np.ndarray | None = None
 
     @property
     def n_cells(self) -> int:
@@ -251,6 +256,8 @@ def build_cells(
         species_pool=species_pool,
         effort_unit={g: unit.get(g, "") for g in gears},
         report=report,
+        group_present=present_gg,
+        group_effort=effort_gg,
     )
 
 

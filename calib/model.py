@@ -1,0 +1,417 @@
+"""Stage 3: the Bayesian calibration model (design section 5).
+
+For calibration cell i (one group x species) with total n_i = sum_g y_ig over the gears
+present in the group, the split of the catch among the gears is
+
+    Dirichlet-multinomial(n_i; alpha_i),   alpha_ig = kappa_i * w_ig * exp(theta_gs)
+
+with w_ig the relative effort, theta_gs = log(q_gs / q_ref,s) (theta_ref,s = 0) and kappa
+the patchiness concentration of the cell's species and gear combination. The
+concentrations are not normalised, so gears absent from a group are simply masked out
+of the cell's likelihood (aggregation property of the Dirichlet-multinomial; for two
+gears it is the beta-binomial). ``overdispersion="none"`` is the kappa -> infinity limit,
+the multinomial split with p_ig = w_ig exp(theta_gs) / sum_present w exp(theta).
+
+Hierarchy (``pooling="partial"``, non-centred):
+
+    theta_gs    = mu[g, pool(s)] + tau[g] * z_theta[g, s]          (non-reference gears)
+    log_kappa   = log_kappa_mean[combo] + log_kappa_sd * z_log_kappa[combo, s]
+
+``pooling="none"`` gives every species its own vague priors (no borrowing).
+
+Public: :class:`Priors`, :class:`ModelSpec`, :func:`build_model`, :func:`set_cells`,
+:func:`sample`, :func:`cell_log_density`.
+
+Names in the InferenceData: posterior ``theta`` (gear, species; reference row 0),
+``log_kappa`` (combo, species; absent with ``overdispersion="none"``), the hyper-parameters
+``mu`` (factor_gear, pool), ``tau`` (factor_gear), ``log_kappa_mean`` (combo),
+``log_kappa_sd``; log_likelihood ``split`` (cell); prior ``theta`` (and the other free
+variables); observed_data ``split``; constant_data the data containers.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+from scipy.special import gammaln, logsumexp
+
+from calib.cells import Cells
+
+OVERDISPERSION = ("dirichlet-multinomial", "none")
+POOLING = ("partial", "none")
+SAMPLERS = ("pymc", "nutpie")
+
+LIKELIHOOD = "split"  # name of the observed variable and of its log_likelihood entry
+DATA_NAMES = ("counts", "present", "weight", "cell_species", "cell_combo")
+
+
+@dataclass(frozen=True)
+class Priors:
+    """Weakly informative priors of the calibration model (all on the log scale).
+
+    theta_mu_sd = 1.5
+        mu[g, k] ~ Normal(0, 1.5): the typical log catchability ratio of gear g to the
+        reference within pooling group k. 95% of prior mass puts the typical factor
+        between exp(-2.94) = 0.05 and 19: gears that catch 20 times more or less than the
+        reference are possible, a factor of 100 is not expected.
+    theta_tau_sd = 1.0
+        tau[g] ~ HalfNormal(1): species-to-species spread of theta around mu. The prior
+        median 0.67 says species usually differ by a factor of about 2 from the
+        gear's typical ratio; tau near 0 (all species alike) is allowed.
+    log_kappa_loc_mean = log(3), log_kappa_loc_sd = 1.5
+        log_kappa_mean[combo] ~ Normal(log 3, 1.5): typical patchiness per gear combination.
+        A tow's catch rate has coefficient of variation 1/sqrt(kappa * w * exp(theta)); at
+        kappa = 3 that is 0.58 for a gear as efficient as the reference, and the
+        log-ratio of two such tows has sd sqrt(2 * trigamma(3)) = 0.80. The 95% range,
+        kappa 0.16 to 57, runs from very patchy catches (CV 2.5) to near-Poisson ones.
+    log_kappa_spread_sd = 1.0
+        log_kappa_sd ~ HalfNormal(1): species differ in patchiness by a factor of about
+        2 (prior median 0.67 on the log scale).
+    unpooled_theta_sd = 5.0
+        pooling="none": theta[g, s] ~ Normal(0, 5), vague (factors from 5e-5 to 2e4
+        at 95%), so the likelihood alone decides, as in maximum likelihood.
+    unpooled_log_kappa_mean = log(3), unpooled_log_kappa_sd = 3.0
+        pooling="none": log_kappa[combo, s] ~ Normal(log 3, 3), independent, vague.
+    """
+
+    theta_mu_sd: float = 1.5
+    theta_tau_sd: float = 1.0
+    log_kappa_loc_mean: float = math.log(3.0)
+    log_kappa_loc_sd: float = 1.5
+    log_kappa_spread_sd: float = 1.0
+    unpooled_theta_sd: float = 5.0
+    unpooled_log_kappa_mean: float = math.log(3.0)
+    unpooled_log_kappa_sd: float = 3.0
+
+    def to_dict(self) -> dict:
+        """Plain dict (with readable formulas) for the manifest."""
+        d = asdict(self)
+        d["formulas"] = {
+            "partial": {
+                "mu[gear, pool]": f"Normal(0, {self.theta_mu_sd})",
+                "tau[gear]": f"HalfNormal({self.theta_tau_sd})",
+                "theta[gear, species]": "mu[gear, pool(species)] + tau[gear] * Normal(0, 1)",
+                "log_kappa_mean[combo]": f"Normal({self.log_kappa_loc_mean:.4f}, {self.log_kappa_loc_sd})",
+                "log_kappa_sd": f"HalfNormal({self.log_kappa_spread_sd})",
+                "log_kappa[combo, species]": "log_kappa_mean[combo] + log_kappa_sd * Normal(0, 1)",
+            },
+            "none": {
+                "theta[gear, species]": f"Normal(0, {self.unpooled_theta_sd})",
+                "log_kappa[combo, species]": (
+                    f"Normal({self.unpooled_log_kappa_mean:.4f}, {self.unpooled_log_kappa_sd})"
+                ),
+            },
+            "theta[reference, species]": "0",
+        }
+        return d
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Which variant of the split model to build.
+
+    overdispersion : "dirichlet-multinomial" (gamma patchiness, default) or "none"
+        (multinomial split, kappa -> infinity).
+    pooling : "partial" (theta and log kappa pooled across species) or "none"
+        (every species on its own, vague priors).
+    priors : :class:`Priors`.
+    """
+
+    overdispersion: str = "dirichlet-multinomial"
+    pooling: str = "partial"
+    priors: Priors = field(default_factory=Priors)
+
+    def __post_init__(self):
+        if self.overdispersion not in OVERDISPERSION:
+            raise ValueError(f"overdispersion must be one of {OVERDISPERSION}, not {self.overdispersion!r}")
+        if self.pooling not in POOLING:
+            raise ValueError(f"pooling must be one of {POOLING}, not {self.pooling!r}")
+
+    def to_dict(self) -> dict:
+        return {
+            "likelihood": "conditional split of each group's total among the gears present",
+            "overdispersion": self.overdispersion,
+            "pooling": self.pooling,
+            "priors": self.priors.to_dict(),
+        }
+
+
+# ---------------------------------------------------------------------------
+# Reference implementation (numpy / scipy)
+# ---------------------------------------------------------------------------
+
+
+def cell_log_density(
+    counts: np.ndarray,
+    present: np.ndarray,
+    weight: np.ndarray,
+    theta_cells: np.ndarray,
+    kappa_cells: np.ndarray | None = None,
+) -> np.ndarray:
+    """Log-probability of each cell's split given its total (nats), plain numpy.
+
+    counts, present, weight, theta_cells : (n_cells, n_gears); theta_cells holds
+        theta[g, species(i)] for every gear (0 for the reference).
+    kappa_cells : (n_cells,) concentration kappa of each cell, or None for the
+        multinomial split (overdispersion "none").
+
+    Returns (n_cells,) log p(y_i | n_i), including the multinomial coefficient.
+    """
+    y = np.asarray(counts, dtype=float)
+    present = np.asarray(present, dtype=bool)
+    n = y.sum(axis=1)
+    log_w = np.log(np.where(present, weight, 1.0))
+    eta = log_w + np.asarray(theta_cells, dtype=float)
+    coef = gammaln(n + 1.0) - np.where(present, gammaln(y + 1.0), 0.0).sum(axis=1)
+    if kappa_cells is None:
+        log_p = eta - logsumexp(np.where(present, eta, -np.inf), axis=1, keepdims=True)
+        return coef + np.where(present, y * np.where(present, log_p, 0.0), 0.0).sum(axis=1)
+    alpha = np.where(present, np.asarray(kappa_cells, dtype=float)[:, None] * np.exp(eta), 1.0)
+    a_sum = np.where(present, alpha, 0.0).sum(axis=1)
+    terms = np.where(present, gammaln(y + alpha) - gammaln(alpha), 0.0).sum(axis=1)
+    return coef + gammaln(a_sum) - gammaln(n + a_sum) + terms
+
+
+def draw_split(
+    rng: np.random.Generator,
+    totals: np.ndarray,
+    present: np.ndarray,
+    log_alpha: np.ndarray,
+    overdispersed: bool = True,
+) -> np.ndarray:
+    """Replicate counts of each cell given its total (numpy).
+
+    totals (..., ), present (..., n_gears), log_alpha (..., n_gears) = log kappa + log w + theta
+    (with overdispersed=False the kappa part is irrelevant: p = softmax over present gears).
+    Dirichlet-multinomial via gamma draws normalised over the present gears.
+    """
+    totals = np.asarray(totals, dtype=np.int64)
+    present = np.asarray(present, dtype=bool)
+    log_alpha = np.asarray(log_alpha, dtype=float)
+    if overdispersed:
+        # Gamma(alpha) draws; tiny alphas can underflow to 0, so work on the log scale
+        # via log U / alpha (Gamma(a) = Gamma(a + 1) * U^(1/a)).
+        alpha = np.exp(np.where(present, log_alpha, 0.0))
+        log_g = np.log(rng.gamma(alpha + 1.0)) + np.log(rng.uniform(size=alpha.shape)) / alpha
+    else:
+        log_g = log_alpha
+    log_g = np.where(present, log_g, -np.inf)
+    p = np.exp(log_g - log_g.max(axis=-1, keepdims=True))
+    p = p / p.sum(axis=-1, keepdims=True)
+    flat_p = p.reshape(-1, p.shape[-1])
+    flat_n = totals.reshape(-1)
+    out = rng.multinomial(flat_n, flat_p)
+    return out.reshape(p.shape).astype(np.int64)
+
+
+# ---------------------------------------------------------------------------
+# PyMC model
+# ---------------------------------------------------------------------------
+
+
+def _dm_logp(value, log_alpha, present, total):
+    """Dirichlet-multinomial log-density over the present gears (pytensor)."""
+    import pytensor.tensor as pt
+
+    y = pt.cast(value, "float64")
+    n = y.sum(axis=-1)
+    alpha = pt.exp(pt.switch(present, log_alpha, 0.0))
+    a_sum = pt.switch(present, alpha, 0.0).sum(axis=-1)
+    coef = pt.gammaln(n + 1.0) - pt.switch(present, pt.gammaln(y + 1.0), 0.0).sum(axis=-1)
+    terms = pt.switch(present, pt.gammaln(y + alpha) - pt.gammaln(alpha), 0.0).sum(axis=-1)
+    return coef + pt.gammaln(a_sum) - pt.gammaln(n + a_sum) + terms
+
+
+def _multinomial_logp(value, log_alpha, present, total):
+    """Multinomial log-density over the present gears (pytensor); kappa cancels."""
+    import pytensor.tensor as pt
+
+    y = pt.cast(value, "float64")
+    n = y.sum(axis=-1)
+    masked = pt.switch(present, log_alpha, -np.inf)
+    log_norm = pt.logsumexp(masked, axis=-1, keepdims=True)
+    coef = pt.gammaln(n + 1.0) - pt.switch(present, pt.gammaln(y + 1.0), 0.0).sum(axis=-1)
+    return coef + pt.switch(present, y * (pt.switch(present, log_alpha, 0.0) - log_norm), 0.0).sum(axis=-1)
+
+
+def _random_factory(overdispersed: bool):
+    def random(log_alpha, present, total, rng=None, size=None):
+        log_alpha = np.asarray(log_alpha)
+        if size is not None:
+            shape = tuple(size) + log_alpha.shape[-1:]
+            log_alpha = np.broadcast_to(log_alpha, shape)
+            present = np.broadcast_to(present, shape)
+            total = np.broadcast_to(total, shape[:-1])
+        return draw_split(rng, total, present, log_alpha, overdispersed=overdispersed)
+
+    return random
+
+
+def _cell_arrays(cells: Cells, combos: list[str]) -> dict[str, np.ndarray]:
+    index = {c: i for i, c in enumerate(combos)}
+    unknown = sorted(set(cells.combos) - set(index))
+    if unknown:
+        raise ValueError(f"gear combinations {unknown} are not in the model (built for {combos})")
+    combo_map = np.array([index[c] for c in cells.combos], dtype=np.int64)
+    return {
+        "counts": np.asarray(cells.counts, dtype=np.int64),
+        "present": np.asarray(cells.present, dtype=bool),
+        "weight": np.asarray(cells.weight, dtype=np.float64),
+        "cell_species": np.asarray(cells.cell_species, dtype=np.int64),
+        "cell_combo": combo_map[np.asarray(cells.cell_combo, dtype=np.int64)]
+        if len(cells.cell_combo)
+        else np.zeros(0, dtype=np.int64),
+    }
+
+
+def build_model(cells: Cells, spec: ModelSpec = ModelSpec()):
+    """Build the PyMC model of the catch split for ``cells``.
+
+    Coordinates: gear (all gears, reference first), factor_gear (non-reference gears),
+    species, cell, combo (gear combinations of the groups), pool (species pooling groups).
+    Data containers (swap with :func:`set_cells`): counts, present, weight (cell, gear),
+    cell_species, cell_combo (cell), species_pool (species).
+
+    Returns a ``pm.Model``; sample it with :func:`sample`.
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    if cells.n_gears < 2:
+        raise ValueError("the model needs at least two gears (the reference and one other)")
+    if cells.n_cells == 0:
+        raise ValueError("no calibration cells with a non-zero total: nothing to fit")
+    p = spec.priors
+    coords = {
+        "gear": list(cells.gears),
+        "factor_gear": list(cells.gears[1:]),
+        "species": list(cells.species),
+        "cell": np.arange(cells.n_cells),
+        "combo": list(cells.combos),
+        "pool": list(cells.pool_groups),
+    }
+    arrays = _cell_arrays(cells, list(cells.combos))
+    with pm.Model(coords=coords) as model:
+        counts = pm.Data("counts", arrays["counts"], dims=("cell", "gear"))
+        present = pm.Data("present", arrays["present"], dims=("cell", "gear"))
+        weight = pm.Data("weight", arrays["weight"], dims=("cell", "gear"))
+        cell_species = pm.Data("cell_species", arrays["cell_species"], dims="cell")
+        cell_combo = pm.Data("cell_combo", arrays["cell_combo"], dims="cell")
+        species_pool = pm.Data("species_pool", np.asarray(cells.species_pool, dtype=np.int64), dims="species")
+
+        if spec.pooling == "partial":
+            mu = pm.Normal("mu", 0.0, p.theta_mu_sd, dims=("factor_gear", "pool"))
+            tau = pm.HalfNormal("tau", p.theta_tau_sd, dims="factor_gear")
+            z_theta = pm.Normal("z_theta", 0.0, 1.0, dims=("factor_gear", "species"))
+            theta_other = mu[:, species_pool] + tau[:, None] * z_theta
+        else:
+            theta_other = pm.Normal("theta_free", 0.0, p.unpooled_theta_sd, dims=("factor_gear", "species"))
+        n_species = len(cells.species)
+        theta = pm.Deterministic(
+            "theta",
+            pt.concatenate([pt.zeros((1, n_species), dtype="float64"), theta_other], axis=0),
+            dims=("gear", "species"),
+        )
+        log_alpha = pt.log(pt.switch(present, weight, 1.0)) + theta[:, cell_species].T
+
+        if spec.overdispersion == "dirichlet-multinomial":
+            if spec.pooling == "partial":
+                eta = pm.Normal("log_kappa_mean", p.log_kappa_loc_mean, p.log_kappa_loc_sd, dims="combo")
+                sigma = pm.HalfNormal("log_kappa_sd", p.log_kappa_spread_sd)
+                z_kappa = pm.Normal("z_log_kappa", 0.0, 1.0, dims=("combo", "species"))
+                log_kappa = pm.Deterministic(
+                    "log_kappa", eta[:, None] + sigma * z_kappa, dims=("combo", "species")
+                )
+            else:
+                log_kappa = pm.Normal(
+                    "log_kappa", p.unpooled_log_kappa_mean, p.unpooled_log_kappa_sd, dims=("combo", "species")
+                )
+            log_alpha = log_alpha + log_kappa[cell_combo, cell_species][:, None]
+            logp, overdispersed = _dm_logp, True
+        else:
+            logp, overdispersed = _multinomial_logp, False
+
+        pm.CustomDist(
+            LIKELIHOOD,
+            log_alpha,
+            present,
+            counts.sum(axis=1),
+            logp=logp,
+            random=_random_factory(overdispersed),
+            signature="(g),(g),()->(g)",
+            dtype="int64",
+            observed=counts,
+            dims=("cell", "gear"),
+        )
+    model._calib_spec = spec  # read by sample() / diagnostics
+    return model
+
+
+def set_cells(model, cells: Cells) -> None:
+    """Swap new calibration cells into a built model (same gears, species, combos, pools).
+
+    The number of cells may change; nothing is recompiled by PyMC for the graph
+    (the PyTensor C cache makes the next compile cheap).
+    """
+    import pymc as pm
+
+    coords = model.coords
+    for name, have in (("gear", cells.gears), ("species", cells.species), ("pool", cells.pool_groups)):
+        if list(coords[name]) != list(have):
+            raise ValueError(f"{name} differ from the model's: model {list(coords[name])}, cells {list(have)}")
+    arrays = _cell_arrays(cells, list(coords["combo"]))
+    pm.set_data(
+        {**arrays, "species_pool": np.asarray(cells.species_pool, dtype=np.int64)},
+        model=model,
+        coords={"cell": np.arange(cells.n_cells)},
+    )
+
+
+def model_spec(model) -> ModelSpec:
+    """The :class:`ModelSpec` a model was built with."""
+    return getattr(model, "_calib_spec", ModelSpec())
+
+
+def sample(
+    model,
+    *,
+    draws: int = 1000,
+    tune: int = 1000,
+    chains: int = 2,
+    seed: int = 0,
+    progressbar: bool = True,
+    cores: int | None = None,
+    target_accept: float = 0.9,
+    prior_draws: int = 2000,
+):
+    """Sample the posterior with PyMC's NUTS; add log_likelihood and prior groups.
+
+    draws, tune : per chain. seed : the same seed gives identical draws.
+    prior_draws : draws of the prior (group ``prior``), used for prior_ratio.
+
+    Returns ``arviz.InferenceData`` with groups posterior, sample_stats (incl. diverging),
+    log_likelihood (``split``, per cell), prior, observed_data, constant_data.
+    """
+    import pymc as pm
+
+    free = [rv.name for rv in model.free_RVs]
+    deterministic = [v.name for v in model.deterministics]
+    with model:
+        idata = pm.sample(
+            draws=draws,
+            tune=tune,
+            chains=chains,
+            cores=cores if cores is not None else min(chains, 2),
+            random_seed=seed,
+            progressbar=progressbar,
+            target_accept=target_accept,
+            idata_kwargs={"log_likelihood": True},
+            compute_convergence_checks=False,
+        )
+        prior = pm.sample_prior_predictive(
+            draws=prior_draws, var_names=free + deterministic, random_seed=seed + 1
+        )
+    idata.add_groups({"prior": prior.prior})
+    return idata
