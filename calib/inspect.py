@@ -113,7 +113,9 @@ class CheckSummary:
             lines.append(f"  {c['label']}: {c['n_groups']} group{'s' if c['n_groups'] != 1 else ''}{tail}")
         lines.append(f"  groups where several hauls of one gear were summed: {self.groups_with_summed_hauls}")
         lines.append("")
-        if self.reference is not None:
+        if self.reference is not None and not any(g["gear"] == self.reference for g in self.gears):
+            lines.append(f"Reference gear '{self.reference}': not a gear in the hauls table")
+        elif self.reference is not None:
             linked = next((s for s in self.connected_sets if self.reference in s), [])
             others = [g for g in linked if g != self.reference]
             lines.append(f"Reference gear '{self.reference}': linked through calibration groups to "

@@ -112,9 +112,20 @@ SPECS = {"hauls": HAULS_COLUMNS, "catches": CATCHES_COLUMNS, "lengths": LENGTHS_
 ROLE_ORDER = {"hauls": 0, "catches": 1, "lengths": 2}
 
 
+# Several checks of one column parse the same text; pandera hands every check the same
+# array, so parse it once per validation. Entries keep the array alive (ids stay unique)
+# and the cache is emptied after each validation.
+_PARSE_CACHE: dict[int, tuple[object, pd.Series]] = {}
+
+
 def _numbers(text: pd.Series) -> pd.Series:
     """Parse stripped text to float; NaN where blank or not a number."""
-    return pd.to_numeric(text.where(text != ""), errors="coerce").astype(float)
+    hit = _PARSE_CACHE.get(id(text.array))
+    if hit is not None and hit[0] is text.array and hit[1].index.equals(text.index):
+        return hit[1]
+    parsed = pd.to_numeric(text.where(text != ""), errors="coerce").astype(float)
+    _PARSE_CACHE[id(text.array)] = (text.array, parsed)
+    return parsed
 
 
 def _dates(text: pd.Series, *, any_year: bool = False) -> pd.Series:
@@ -359,7 +370,9 @@ def _read_role(role: str, path, problems: ProblemList, warnings: list[Warning_])
         warnings.append(Warning_(
             f"{int(blank.sum())} empty row(s) skipped ({_rows(text.index[blank] + 1)})", path_str))
         text = text[~blank]
-    if text.empty:
+    if text.empty and role == "lengths":
+        warnings.append(Warning_("the lengths table has no data rows: no lengths are used", path_str))
+    elif text.empty:
         problems.add(path_str, None, None, f"the {role} table has no data rows",
                      "check that this is the right file and that it has rows under the header", is_csv)
     if "_row" in text.columns:
@@ -393,6 +406,8 @@ def _column_problems(raw: _Raw) -> list[Problem]:
         return []
     except pa.errors.SchemaErrors as err:
         cases = err.failure_cases
+    finally:
+        _PARSE_CACHE.clear()
     out: list[Problem] = []
     text = raw.text
     dup_rows: dict[tuple, set[int]] = {}
@@ -404,11 +419,13 @@ def _column_problems(raw: _Raw) -> list[Problem]:
                                _missing_column_fix(name, text.columns), raw.is_csv))
         elif check in ("field_uniqueness", "multiple_fields_uniqueness"):
             key_cols = ("haul_id",) if check == "field_uniqueness" else ("haul_id", "species")
+            if not set(key_cols) <= set(text.columns):
+                continue  # a key column is missing (reported); pandera then checks the rest alone
             idx = int(case.index)
             key = tuple(text.at[idx, c] for c in key_cols)
             if "" not in key:  # blank keys are reported as blanks
                 dup_rows.setdefault((check, key), set()).add(idx)
-        elif check in ("dtype('str')", "not_nullable") or case.index is None:
+        elif check in ("dtype('str')", "not_nullable") or _is_missing(case.index):
             # every cell is text and blanks are "", so these do not arise; never hide one
             out.append(Problem(raw.path, None, None if pd.isna(case.column) else str(case.column),
                                f"table check '{check}' failed ({case.failure_case})",
@@ -516,15 +533,19 @@ def _cross_problems(raws: dict[str, _Raw], typed: dict[str, pd.DataFrame]) -> li
     # more fish measured than counted
     if "lengths" in typed and "catches" in typed:
         tl = typed["lengths"].dropna(subset=["n"])
-        measured = tl.groupby(["haul_id", "species"], sort=False).agg(
-            n=("n", "sum"), rows=("_row", list))
+        measured = tl.groupby(["haul_id", "species"], sort=False)["n"].sum().rename("n").to_frame()
         tc = typed["catches"].dropna(subset=["count"]).drop_duplicates(["haul_id", "species"])
         both = measured.join(tc.set_index(["haul_id", "species"])[["count", "_row"]], how="inner")
         over = both[both["n"] > both["count"] + 1e-9]
+        if len(over):
+            key = pd.MultiIndex.from_frame(tl[["haul_id", "species"]])
+            rows_of = tl["_row"][key.isin(over.index)].groupby(
+                [tl["haul_id"], tl["species"]]).agg(list)
         for (hid, sp), r in over.iterrows():
+            rows = rows_of.loc[(hid, sp)]
             out.append(Problem(
-                lengths.path, int(min(r["rows"])), "n",
-                f"{int(r['n'])} fish of '{sp}' measured in haul '{hid}' ({_rows(r['rows'])}) but "
+                lengths.path, int(min(rows)), "n",
+                f"{int(r['n'])} fish of '{sp}' measured in haul '{hid}' ({_rows(rows)}) but "
                 f"catches row {int(r['_row'])} counts only {r['count']:g}",
                 "correct n here or the count in catches: more fish cannot be measured than were caught",
                 lengths.is_csv))
