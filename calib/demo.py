@@ -62,7 +62,7 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(f"  {len(table)} factors for {table['species'].nunique()} species and "
           f"{table['gear'].nunique()} gears; status: "
           + ", ".join(f"{n} {s}" for s, n in table['status'].value_counts().items()))
-    print(f"  The true factors used to simulate the data are in {data / 'README.md'}.")
+    print(f"  The true factors used to simulate the data are in {data / 'truth' / 'factors.csv'}.")
     print("\n== Files")
     print(f"  check summary:  {out / 'check.txt'}")
     print(f"  factor set:     {factors_dir}/ (factors.csv, checks.csv, posterior.nc, manifest.json)")

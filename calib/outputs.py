@@ -19,6 +19,7 @@ def atomic_directory(target: str | os.PathLike):
     target = Path(target)
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=target.parent))
+    os.chmod(tmp, 0o755)  # mkdtemp makes the folder private; outputs are ordinary folders
     try:
         yield tmp
     except BaseException:
@@ -41,6 +42,7 @@ def atomic_file(target: str | os.PathLike, data: bytes | str) -> None:
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data.encode() if isinstance(data, str) else data)
+        os.chmod(tmp, 0o644)  # mkstemp makes files private; outputs are ordinary files
         os.replace(tmp, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):

@@ -31,7 +31,7 @@ count > 0**; a haul x species missing from ``catches`` is a true zero, as the re
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -406,6 +406,8 @@ def simulate_calibration(
                 present[i, gears.index(gname)] = True
     n_hauls = present.astype(int)
     for gname, val in (hauls_per_gear or {}).items():
+        if gname not in gears:
+            raise ValueError(f"hauls_per_gear names an unknown gear {gname!r}")
         g = gears.index(gname)
         n_hauls[:, g] = present[:, g] * np.broadcast_to(np.asarray(val, dtype=int), (n_groups,))
     present = n_hauls > 0
@@ -450,28 +452,26 @@ def simulate_calibration(
     by_class = grid is not None and lengths.patchiness_level == "length_class"
     length_frames: list[pd.DataFrame] = []
 
-    def draw(mean_scale, shape_scale, sizes):
-        """Counts with expectation lam * shape_scale... see module docstring."""
+    def draw(lam_scale, rate_mean, k, size):
+        """Counts with expectation lam_scale * rate_mean (see the module docstring).
+
+        gamma: the catch rate has mean rate_mean and shape k * rate_mean (rate k)."""
         if patchiness == "gamma":
-            k = kap_b
-            rate = rng.gamma(shape=k * shape_scale, scale=1.0 / k, size=sizes)
-            return rng.poisson(mean_scale * rate)
+            rate = rng.gamma(shape=k * rate_mean, scale=1.0 / k, size=size)
+            return rng.poisson(lam_scale * rate)
         if patchiness == "lognormal":
-            return rng.poisson(mean_scale * shape_scale * np.exp(tow_sd * rng.standard_normal(sizes)))
-        return rng.poisson(mean_scale * shape_scale)
+            return rng.poisson(lam_scale * rate_mean * np.exp(tow_sd * rng.standard_normal(size)))
+        return rng.poisson(lam_scale * rate_mean)
 
     if not by_class:
-        kap_b = kap[None, :]
-        # Gamma: rate has mean w*exp(theta); count = Poisson(lambda * rate).
-        count = draw(lam[haul_group], rel_effort[:, None] * np.exp(th), (n_h, n_s))
+        count = draw(lam[haul_group], rel_effort[:, None] * np.exp(th), kap[None, :], (n_h, n_s))
     else:
         count = np.zeros((n_h, n_s), dtype=np.int64)
         class_counts = []
         for s in range(n_s):
             p, d = grid.share[s], grid.delta[s]
-            kap_b = kap[s]
-            shape = rel_effort[:, None] * np.exp(th[:, [s]] + d[haul_gear])
-            y = draw(lam[haul_group, s][:, None] * p[None, :], shape, shape.shape)
+            rate_mean = rel_effort[:, None] * np.exp(th[:, [s]] + d[haul_gear])
+            y = draw(lam[haul_group, s][:, None] * p[None, :], rate_mean, kap[s], rate_mean.shape)
             class_counts.append(y)
             count[:, s] = y.sum(axis=1)
     count = count.astype(np.int64)
@@ -739,12 +739,12 @@ _DEMO_TABLE = [
     ("striped mullet", "Mugil cephalus", "fish", 0.3, 1.0, 1.2, -0.30, 1.80, 1.5, 0.8, 0.0, 70, 0.35),
     ("Atlantic silverside", "Menidia menidia", "fish", 1.5, 4.0, 1.5, -0.25, 2.50, 1.5, 0.8, 0.0, 60, 0.25),
     ("Atlantic menhaden", "Brevoortia tyrannus", "fish", 2.0, 2.0, 1.8, -0.35, 1.40, 0.8, 0.5, 0.0, 55, 0.30),
-    ("spotted seatrout", "Cynoscion nebulosus", "fish", 0.15, 0.2, 1.2, -0.20, 0.40, 3.0, 1.5, 0.0, 130, 0.45),
+    ("spotted seatrout", "Cynoscion nebulosus", "fish", 0.15, 0.2, 1.2, -0.20, 0.30, 3.0, 1.5, 0.0, 130, 0.45),
     ("southern flounder", "Paralichthys lethostigma", "fish", 0.25, 0.2, 1.2, -0.50, -0.70, 4.0, 2.0, -0.05, 120, 0.45),
     ("hogchoker", "Trinectes maculatus", "fish", 1.5, 0.3, 1.2, -0.45, -0.90, 4.0, 2.0, 0.0, 75, 0.35),
     ("blue crab", "Callinectes sapidus", "crustacean", 1.2, 1.5, 1.2, -0.40, -0.20, 4.0, 2.0, 0.0, 60, 0.55),
     ("daggerblade grass shrimp", "Palaemon pugio", "crustacean", 6.0, 10.0, 1.2, -0.60, 1.60, 2.5, 1.2, 0.0, 30, 0.20),
-    ("pink shrimp", "Penaeus duorarum", "crustacean", 2.5, 1.5, 1.2, -0.35, -0.35, 3.0, 1.5, 0.03, 65, 0.30),
+    ("pink shrimp", "Penaeus duorarum", "crustacean", 2.5, 1.5, 1.2, -0.35, -0.55, 3.0, 1.5, 0.03, 65, 0.30),
 ]
 DEMO_SPECIES = tuple(row[0] for row in _DEMO_TABLE)
 # Length effects (change of theta per sd of length): the legacy trawl's larger mesh lets small
@@ -782,6 +782,7 @@ _DEMO_STRATA = {
 # chosen so the coordinates point to no real place.
 _DEMO_SITE_COUNTS = {"lower_channel": 8, "upper_channel": 6, "north_shore": 8, "south_shore": 8, "creek_flats": 6}
 _SITE_CODE = {"lower_channel": "LC", "upper_channel": "UC", "north_shore": "NS", "south_shore": "SS", "creek_flats": "CF"}
+_SOURCE_CODE = {"channel_trawl_survey": "CT", "shore_seine_survey": "SS", "tidal_creek_survey": "TC"}
 _TRAWL_OPENING_M = {"otter_trawl_new": 3.6, "otter_trawl_old": 3.0}  # effective swept width
 _SEINE_AREA_M2 = (200, 600)
 
@@ -816,9 +817,10 @@ def _demo_params():
     return p
 
 
-def _demo_lengths(p, n_measured: int) -> LengthSpec:
+def _demo_lengths(p, n_measured: int, gears) -> LengthSpec:
+    slopes = {g: v for g, v in p["length_slope_per_10mm"].items() if g in gears}
     return LengthSpec(
-        median_mm=p["median_mm"], cv=p["cv"], slope_per_10mm=p["length_slope_per_10mm"],
+        median_mm=p["median_mm"], cv=p["cv"], slope_per_10mm=slopes,
         n_measured=n_measured, bin_mm=5, patchiness_level="species",
     )
 
@@ -857,7 +859,7 @@ def _demo_sites(rng: np.random.Generator) -> pd.DataFrame:
 
 
 def _season_temperature(dates: pd.Series, rng) -> np.ndarray:
-    doy = pd.to_datetime(dates).dt.dayofyear.to_numpy()
+    doy = pd.to_datetime(dates).dt.day_of_year.to_numpy()
     t = 22.0 + 8.0 * np.sin(2 * np.pi * (doy - 110) / 365.25) + rng.normal(0, 1.2, size=len(doy))
     return np.round(t, 1)
 
@@ -928,7 +930,7 @@ def _demo_all(seed: int = DEMO_SEED) -> dict[str, pd.DataFrame]:
         _N_TRAWL_PAIRS, ["otter_trawl_new", "otter_trawl_old"], {"otter_trawl_old": p["theta"]["otter_trawl_old"]},
         p["channel"], kappa=p["kappa_pairs"], patchiness="gamma", effort=peffort, seed=pairs_rng,
         species=species, log_density_sd=p["log_sd"], effort_unit="m2", density_effort=DEMO_DENSITY_EFFORT,
-        group_covariates=pcov, lengths=_demo_lengths(p, _DEMO_N_MEASURED["gear_trials"]), id_prefix="P14-",
+        group_covariates=pcov, lengths=_demo_lengths(p, _DEMO_N_MEASURED["gear_trials"], DEMO_GEARS[:2]), id_prefix="P14-",
     )
 
     # 2. Side-by-side seine + new trawl at shallow sites, 2012-2013; some with two seine hauls,
@@ -955,7 +957,7 @@ def _demo_all(seed: int = DEMO_SEED) -> dict[str, pd.DataFrame]:
         effort=seffort, seed=seine_rng, group_gears=group_gears, species=species, log_density_sd=p["log_sd"],
         hauls_per_gear={"beach_seine": two_seines}, effort_unit="m2", effort_decimals=0,
         density_effort=DEMO_DENSITY_EFFORT, group_covariates=scov,
-        lengths=_demo_lengths(p, _DEMO_N_MEASURED["gear_trials"]), id_prefix="S13-",
+        lengths=_demo_lengths(p, _DEMO_N_MEASURED["gear_trials"], DEMO_GEARS), id_prefix="S13-",
     )
 
     # 3. Survey records of three partner programs, no pair_id.
@@ -977,7 +979,7 @@ def _demo_all(seed: int = DEMO_SEED) -> dict[str, pd.DataFrame]:
                     k += 1
                     srows.append(
                         {
-                            "haul_id": f"{_SITE_CODE[stratum][:1]}{source[0].upper()}{year}-{k:03d}",
+                            "haul_id": f"{_SOURCE_CODE[source]}{year}-{k:03d}",
                             "gear": gear, "date": dates[j].strftime("%Y-%m-%d"), "effort": eff[j],
                             "effort_unit": "m2", "pair_id": None, "source": source,
                             "site": pick.loc[j, "site"], "stratum": stratum,
@@ -997,13 +999,14 @@ def _demo_all(seed: int = DEMO_SEED) -> dict[str, pd.DataFrame]:
     survey = simulate_survey(
         survey_hauls, list(DEMO_GEARS), p["theta"], strata_density, kappa=_DEMO_SURVEY_KAPPA,
         trend=p["trend"], year_effect_sd=_DEMO_YEAR_EFFECT_SD, base_year=_DEMO_YEARS[0],
-        density_effort=DEMO_DENSITY_EFFORT, lengths=_demo_lengths(p, _DEMO_N_MEASURED["survey"]), seed=survey_rng,
+        density_effort=DEMO_DENSITY_EFFORT, lengths=_demo_lengths(p, _DEMO_N_MEASURED["survey"], DEMO_GEARS), seed=survey_rng,
     )
 
     cal_hauls = pd.concat(
         [_jitter_coordinates(jitter_rng, pairs.hauls, 0.0008), _jitter_coordinates(jitter_rng, seine.hauls, 0.0004)],
         ignore_index=True,
     )
+    survey_hauls = _jitter_coordinates(jitter_rng, survey_hauls, 0.0008)
     hauls = pd.concat([cal_hauls, survey_hauls], ignore_index=True)[_HAUL_COLUMNS]
     hauls["effort"] = hauls["effort"].astype(int)
     catches = pd.concat([pairs.catches, seine.catches, survey.catches], ignore_index=True)
@@ -1015,9 +1018,11 @@ def _demo_all(seed: int = DEMO_SEED) -> dict[str, pd.DataFrame]:
             th = p["theta"][gear][s]
             truth_factors.append({"species": s, "gear": gear, "reference": DEMO_REFERENCE,
                                   "theta": th, "factor": math.exp(-th)})
-    tl = pairs.theta_length  # same length grid in both studies
-    tl = tl[tl["gear"] != DEMO_REFERENCE].merge(
-        seine.theta_length[seine.theta_length["gear"] == "beach_seine"], how="outer"
+    # Both studies share one length grid; take each gear's classes once.
+    tl = pd.concat(
+        [pairs.theta_length[pairs.theta_length["gear"] == "otter_trawl_old"],
+         seine.theta_length[seine.theta_length["gear"] == "beach_seine"]],
+        ignore_index=True,
     )
     tl = tl.assign(_s=tl["species"].map({s: k for k, s in enumerate(species)}),
                    _g=tl["gear"].map({g: k for k, g in enumerate(DEMO_GEARS)}))
@@ -1133,11 +1138,17 @@ def write_demo(directory: str | Path, seed: int = DEMO_SEED) -> list[Path]:
     Returns the paths written. The README is not written (it is maintained by hand and checked
     against :func:`demo_truth_markdown` by the tests).
     """
+    import os
+
+    from calib.outputs import atomic_file
+
     directory = Path(directory)
+    umask = os.umask(0)
+    os.umask(umask)
     written = []
     for name, text in demo_csv_texts(seed).items():
         path = directory / name
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(text, encoding="utf-8", newline="")
+        atomic_file(path, text.encode("utf-8"))
+        os.chmod(path, 0o666 & ~umask)  # the temporary file behind atomic_file is private (0600)
         written.append(path)
     return written
