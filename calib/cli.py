@@ -72,6 +72,12 @@ def build_parser() -> argparse.ArgumentParser:
     _add_tables(p)
     p.add_argument("--reference", metavar="GEAR", default=None,
                    help="reference gear, to check that every gear is linked to it")
+    p.add_argument("--species-recorded", metavar="FILE", default=None,
+                   help="optional table (source, species, year_from, year_to): which species each partner "
+                        "recorded in which years; zeros are completed only for those")
+    p.add_argument("--species-names", metavar="FILE", default=None,
+                   help="optional table (name, accepted_name): partners' species names mapped to one "
+                        "accepted name before anything else")
     p.add_argument("--min-groups", type=int, default=10, metavar="N",
                    help="warn about species caught in fewer calibration groups than this")
 
@@ -99,6 +105,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="'none' assumes no tow-to-tow patchiness (plain multinomial); for comparison only")
     p.add_argument("--pooling", choices=["partial", "none"], default="partial",
                    help="'none' fits every species on its own with vague priors")
+    p.add_argument("--species-recorded", metavar="FILE", default=None,
+                   help="optional table (source, species, year_from, year_to): zeros are completed only "
+                        "for species a source recorded")
+    p.add_argument("--species-names", metavar="FILE", default=None,
+                   help="optional table (name, accepted_name): partners' names mapped to accepted names")
     p.add_argument("--species-groups", metavar="FILE", default=None,
                    help="optional table (species, group): species borrow strength only within a group, "
                         "e.g. fish apart from crustaceans")
@@ -109,6 +120,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--interval", type=float, default=0.9, help="central interval level for factor_lower/upper")
     p.add_argument("--bootstrap-reps", type=int, default=1000, help="bootstrap replicates for --method ratio")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    from calib.convert import add_convert_parser
+
+    add_convert_parser(sub, formatter_class=_Formatter)
 
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
@@ -130,7 +145,8 @@ def _cmd_check(args) -> int:
     from calib.inspect import summarize
     from calib.tables import load_tables
 
-    tables = load_tables(args.hauls, args.catches, args.lengths)
+    tables = load_tables(args.hauls, args.catches, args.lengths,
+                         species_recorded=args.species_recorded, species_names=args.species_names)
     summary = summarize(tables, reference=args.reference, min_groups=args.min_groups)
     print(summary.text())
     return 0
@@ -141,6 +157,7 @@ def _cmd_fit(args) -> int:
 
     factor_set = fit(
         args.hauls, args.catches, lengths=args.lengths, reference=args.reference, method=args.method,
+        species_recorded=args.species_recorded, species_names=args.species_names,
         overdispersion=args.overdispersion, pooling=args.pooling, species_groups=args.species_groups,
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
         n_boot=args.bootstrap_reps, progressbar=not args.quiet,
@@ -149,6 +166,12 @@ def _cmd_fit(args) -> int:
     print(factor_set.summary())
     print(f"\nWrote {args.out}/factors.csv, checks.csv, posterior.nc, manifest.json")
     return 0
+
+
+def _cmd_convert(args) -> int:
+    from calib.convert import run_convert_command
+
+    return run_convert_command(args)
 
 
 def _cmd_demo(args) -> int:
@@ -169,7 +192,7 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
             parser.error(f"--{name.replace('_', '-')} must be a positive whole number")
 
 
-COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "demo": _cmd_demo}
+COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "demo": _cmd_demo}
 
 
 def main(argv: list[str] | None = None) -> int:

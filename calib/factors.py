@@ -80,9 +80,12 @@ def software_versions() -> dict[str, str]:
 def factor_set_id(manifest: dict, table: pd.DataFrame) -> str:
     """Hash of the manifest (without its timestamp) and the factor table.
 
-    The timestamp is left out so the same inputs, settings and seed give the same id.
+    The timestamp and the input paths are left out so the same input files (by content),
+    settings and seed give the same id.
     """
     content = {k: v for k, v in manifest.items() if k not in ("timestamp", "factor_set_id")}
+    # Inputs count by content, not by where they happen to be on disk.
+    content["inputs"] = {role: meta.get("sha256") for role, meta in manifest.get("inputs", {}).items()}
     payload = json.dumps(content, sort_keys=True, default=str) + table.to_csv(index=False)
     return "fs-" + hashlib.sha256(payload.encode()).hexdigest()[:16]
 
@@ -203,7 +206,12 @@ class FactorSet:
             if col in table and table[col].isna().all():
                 table[col] = table[col].astype(object)
         checks_path = directory / "checks.csv"
-        checks = pd.read_csv(checks_path) if checks_path.exists() else pd.DataFrame()
+        checks = pd.DataFrame()
+        if checks_path.exists() and checks_path.stat().st_size > 1:
+            try:
+                checks = pd.read_csv(checks_path)
+            except pd.errors.EmptyDataError:  # written from an empty checks frame
+                checks = pd.DataFrame()
         idata = az.from_netcdf(str(directory / "posterior.nc"), engine="h5netcdf")
         manifest = json.loads((directory / "manifest.json").read_text())
         return cls(table=table, checks=checks, idata=idata, manifest=manifest)

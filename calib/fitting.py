@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from calib import cells as cells_mod
-from calib.errors import InputError
+from calib.errors import InputError, Problem
 from calib.factors import (
     FACTOR_COLUMNS,
     FactorSet,
@@ -28,18 +28,18 @@ from calib.factors import (
 METHODS = ("hierarchical", "ratio", "glm")
 
 
-def _as_tables(hauls, catches, lengths):
+def _as_tables(hauls, catches, lengths, species_recorded=None, species_names=None):
     from calib.tables import Tables, load_tables
 
     if isinstance(hauls, Tables):
         return hauls
-    return load_tables(hauls, catches, lengths)
+    return load_tables(hauls, catches, lengths, species_recorded=species_recorded,
+                       species_names=species_names)
 
 
 def _read_species_groups(path) -> dict[str, str] | None:
     if path is None:
         return None
-    from calib.errors import Problem
     from calib.tables import read_table
 
     frame = read_table(path)
@@ -58,6 +58,8 @@ def fit(
     *,
     reference: str,
     lengths=None,
+    species_recorded=None,
+    species_names=None,
     method: str = "hierarchical",
     overdispersion: str = "dirichlet-multinomial",
     pooling: str = "partial",
@@ -83,6 +85,8 @@ def fit(
         "glm" (conditional multinomial logit maximum likelihood, Wald interval).
     overdispersion : "dirichlet-multinomial" (default) or "none" (plain multinomial split).
     pooling : "partial" (species pooled per gear and pooling group) or "none".
+    species_recorded, species_names : optional paths to the intake tables (which species each
+        source recorded in which years; partner names mapped to accepted names).
     species_groups : optional path to a table (species, group) or a dict species -> group.
     draws, tune, chains, seed : sampler settings (per chain); ``n_boot`` for ratio.
     interval : central interval level for factor_lower / factor_upper (e.g. 0.9).
@@ -99,13 +103,22 @@ def fit(
         raise ValueError(f"method must be one of {METHODS}, not {method!r}")
     if not 0 < interval < 1:
         raise ValueError("interval must be between 0 and 1, e.g. 0.9")
-    tables = _as_tables(hauls, catches, lengths)
+    tables = _as_tables(hauls, catches, lengths, species_recorded, species_names)
     problems = fit_problems(tables, reference)
     if problems:
         raise InputError(problems)
     groups_map = species_groups if isinstance(species_groups, dict) or species_groups is None else _read_species_groups(species_groups)
 
     counts = complete_zeros(tables)
+    if groups_map is not None:
+        unlisted = sorted(set(counts["species"]) - set(groups_map))
+        if unlisted:
+            raise InputError([
+                Problem(str(species_groups) if not isinstance(species_groups, dict) else "species_groups",
+                        None, "species", f"species '{s}' is in the catches but not in the species groups table",
+                        "add a row for it (species, group) so it is pooled with the right group")
+                for s in unlisted
+            ])
     cells = cells_mod.build_cells(tables.hauls, counts, reference, species_groups=groups_map)
     rules = rules or diagnostics.StatusRules()
 
@@ -164,6 +177,10 @@ def fit(
         "species_groups": groups_map,
         "versions": software_versions(),
     }
+    from calib.convert import calibration_domain
+
+    # What the calibration covered (months, covariate ranges), so convert can flag records outside it.
+    manifest["domain"] = calibration_domain(tables.hauls)
     manifest["timestamp"] = utc_timestamp()
     manifest["factor_set_id"] = factor_set_id(manifest, table)
     idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]

@@ -4,7 +4,10 @@ Reads a :class:`calib.tables.Tables` and reports hauls per gear, calibration gro
 per gear combination, species catches and how many groups caught them, and warnings
 that do not stop a command (rare species, unlinked gears, groups on different days or
 far apart, mixed effort units, and every fit-only rule of
-:func:`calib.tables.fit_problems`).
+:func:`calib.tables.fit_problems`). For pooled partner data it also reports what the
+intake tables did and did not cover: sources with no recording list, catches of species
+a source did not record, species that appear in one source only, and names that differ
+only in case or spacing.
 """
 
 from __future__ import annotations
@@ -16,7 +19,7 @@ import pandas as pd
 
 from calib.cells import calibration_hauls, connected_to, gear_graph
 from calib.errors import Warning_
-from calib.tables import Tables, complete_zeros, fit_problems
+from calib.tables import Tables, complete_zeros, fit_problems, unrecorded_catches
 
 # Mean Earth radius R1 = 6371.0088 km (Moritz 2000, "Geodetic Reference System 1980",
 # Journal of Geodesy 74; value recalled from memory). A sphere is close enough for a 2 km check.
@@ -66,6 +69,8 @@ class CheckSummary:
     notes: list[str] = field(default_factory=list)
     warnings: list[Warning_] = field(default_factory=list)
     warning_kinds: list[str] = field(default_factory=list)  # one per warning: the rule that raised it
+    n_species_recorded_rows: int | None = None  # None when no species_recorded table was given
+    n_species_names_rows: int | None = None  # None when no species_names table was given
 
     def as_dict(self) -> dict:
         """Plain dict (JSON-serialisable) of everything in the summary."""
@@ -76,6 +81,8 @@ class CheckSummary:
             "n_calibration_hauls": self.n_calibration_hauls,
             "n_catch_rows": self.n_catch_rows,
             "n_length_rows": self.n_length_rows,
+            "n_species_recorded_rows": self.n_species_recorded_rows,
+            "n_species_names_rows": self.n_species_names_rows,
             "gears": [dict(g) for g in self.gears],
             "combos": [dict(c) for c in self.combos],
             "n_groups": self.n_groups,
@@ -95,9 +102,12 @@ class CheckSummary:
         """Readable plain-text summary. At most ``max_per_kind`` warnings of one kind are
         printed; the rest are counted (all are in ``warnings`` and ``as_dict()``)."""
         lines = ["calib check"]
+        width = max([8] + [len(r) for r in self.files])
         for role, path in self.files.items():
-            n = {"hauls": self.n_hauls, "catches": self.n_catch_rows, "lengths": self.n_length_rows}[role]
-            lines.append(f"  {role:<8} {path} ({n} rows)")
+            n = {"hauls": self.n_hauls, "catches": self.n_catch_rows, "lengths": self.n_length_rows,
+                 "species_recorded": self.n_species_recorded_rows,
+                 "species_names": self.n_species_names_rows}.get(role)
+            lines.append(f"  {role:<{width}} {path} ({n} rows)")
         lines.append("")
         lines.append(f"Hauls: {self.n_hauls}, of which {self.n_calibration_hauls} in calibration groups")
         lines += _table(
@@ -275,8 +285,11 @@ def summarize(
         warnings.append(("fit will stop", Warning_(f"{p.message}; fit stops on this. Fix: {p.fix}",
                                                    p.file, p.row, p.column)))
 
+    intake_notes, intake_warnings = _intake_report(tables, counts)
+    warnings += intake_warnings
+
     no_catch = int((~hauls["haul_id"].isin(catches["haul_id"])).sum())
-    notes = [NO_SPECIES_RECORDED_NOTE]
+    notes = intake_notes
     if no_catch:
         notes.append(f"{no_catch} haul{'s have' if no_catch != 1 else ' has'} no row in catches: "
                      "every species counts as zero there")
@@ -302,7 +315,78 @@ def summarize(
         notes=notes,
         warnings=[w for _, w in warnings],
         warning_kinds=[k for k, _ in warnings],
+        n_species_recorded_rows=None if tables.species_recorded is None else int(len(tables.species_recorded)),
+        n_species_names_rows=None if tables.species_names is None else int(len(tables.species_names)),
     )
+
+
+def _source_label(source) -> str:
+    return "(blank)" if pd.isna(source) else f"'{source}'"
+
+
+def _intake_report(tables: Tables, counts: pd.DataFrame) -> tuple[list[str], list[tuple[str, Warning_]]]:
+    """Notes and warnings about pooled partner data (design section 3, issue 3 item 1).
+
+    ``counts`` is the zero-completed table (``complete_zeros(tables)``).
+    """
+    hauls, catches = tables.hauls, tables.catches
+    hf, cf = tables.files["hauls"], tables.files["catches"]
+    notes: list[str] = []
+    warnings: list[tuple[str, Warning_]] = []
+    n_species = int(catches["species"].nunique())
+
+    sr = tables.species_recorded
+    if sr is None:
+        notes.append(NO_SPECIES_RECORDED_NOTE)
+    else:
+        rf = tables.files["species_recorded"]
+        listed = set(sr["source"])
+        not_filled = len(hauls) * n_species - len(counts)
+        notes.append(f"species_recorded: recording lists for {len(listed & set(hauls['source'].dropna()))} "
+                     f"source(s); zeros are filled only for species a haul's source recorded in the haul's "
+                     f"year ({not_filled} haul x species zero(s) not filled)")
+        per_source = hauls.groupby("source", dropna=False, sort=True).size()
+        for source, n in per_source.items():
+            if source in listed:
+                continue
+            what = (f"{n} haul(s) have a blank source" if pd.isna(source)
+                    else f"source {_source_label(source)} ({n} haul{'s' if n != 1 else ''}) has no rows in "
+                         "species_recorded")
+            warnings.append(("no recording list", Warning_(
+                f"{what}: every species is assumed recorded there, so a species missing from those hauls "
+                "counts as a zero catch; add its recording list if it logged only some species", hf, None, "source")))
+        bad = unrecorded_catches(tables)
+        if len(bad):
+            info = bad.merge(hauls[["haul_id", "source", "year"]], on="haul_id", how="left")
+            for (source, sp), g in info.groupby(["source", "species"], sort=True, dropna=False):
+                years = sorted(g["year"].unique())
+                shown = ", ".join(str(y) for y in years[:5]) + (" ..." if len(years) > 5 else "")
+                warnings.append(("not recorded", Warning_(
+                    f"{len(g)} catches row(s) of '{sp}' from source {_source_label(source)} in year(s) {shown} "
+                    f"that species_recorded does not list for it (e.g. row {int(g['_row'].min())}); without that "
+                    "source's zeros such counts would bias a mean upward, so convert rejects them; add the "
+                    "species and years to species_recorded if the source did record it",
+                    cf, int(g["_row"].min()), "species")))
+
+    if tables.species_names is not None:
+        ren = tables.renamed
+        by_table = ren.groupby("table")["n_rows"].sum() if len(ren) else pd.Series(dtype="int64")
+        if len(ren):
+            parts = ", ".join(f"{int(n)} {t} row(s)" for t, n in by_table.items())
+            notes.append(f"species_names: {ren['name'].nunique()} name(s) as written mapped to "
+                         f"{ren['accepted_name'].nunique()} accepted name(s) ({parts} renamed)")
+        else:
+            notes.append("species_names: no name in the tables needed mapping")
+
+    caught = catches[catches["count"] > 0].merge(hauls[["haul_id", "source"]], on="haul_id", how="left")
+    if hauls["source"].dropna().nunique() >= 2:
+        sources_of = caught.dropna(subset=["source"]).groupby("species")["source"].agg(["nunique", "first", "size"])
+        for sp, r in sources_of[sources_of["nunique"] == 1].iterrows():
+            warnings.append(("one source only", Warning_(
+                f"species '{sp}' was caught in one source only ({_source_label(r['first'])}, {int(r['size'])} "
+                "catches row(s)); check whether other partners write it under another name (species_names "
+                "maps names) or did not record it", cf, None, "species")))
+    return notes, warnings
 
 
 def _group_place_time_warnings(cal: pd.DataFrame, file: str, max_km: float) -> list[tuple[str, Warning_]]:

@@ -1,4 +1,5 @@
-"""Stage 1: read and validate the input tables (hauls, catches, lengths).
+"""Stage 1: read and validate the input tables (hauls, catches, lengths, and the
+partner intake tables species_recorded and species_names).
 
 This is the only module that checks input. Everything downstream trusts a
 :class:`Tables` object. Formats are fixed by docs/data-formats.md (design section 3).
@@ -6,8 +7,13 @@ This is the only module that checks input. Everything downstream trusts a
 INTERFACE (implemented by the tables work; other stages rely on exactly this):
 
     read_table(path) -> pandas.DataFrame               # CSV or Parquet by suffix, every cell as text
-    load_tables(hauls, catches, lengths=None) -> Tables  # raises calib.errors.InputError with all problems
+    load_tables(hauls, catches, lengths=None, species_recorded=None, species_names=None) -> Tables
+                                                        # raises calib.errors.InputError with all problems
     complete_zeros(tables, recorded=None) -> DataFrame  # one row per haul x species, zeros filled
+                                                        # (only where recorded, see species_recorded)
+    recorded_pairs(tables) -> DataFrame | None          # haul_id x species a haul's source recorded
+    zero_grid(tables) -> (haul_pos, species_code, species, count)  # complete_zeros as positions
+    unrecorded_catches(tables) -> DataFrame             # catches rows of species their source did not record
     fit_problems(tables, reference) -> list[Problem]    # rules only fitting needs (errors for fit,
                                                         # warnings for check)
 
@@ -23,8 +29,25 @@ INTERFACE (implemented by the tables work; other stages rely on exactly this):
               Unique per haul_id x species. Counts may be non-integer (raised counts).
     lengths:  DataFrame or None: haul_id, species, length_mm (float > 0), n (int64 > 0), ``_row``.
               Every haul_id x species is in catches and sum(n) <= count.
-    files:    dict role -> path string as given ("hauls", "catches", "lengths").
+    files:    dict role -> path string as given ("hauls", "catches", "lengths",
+              "species_recorded", "species_names").
     warnings: list[calib.errors.Warning_] found while reading (do not stop the command).
+    species_recorded: DataFrame or None: source, species (accepted name), year_from, year_to
+              (float; NaN when blank = open-ended), ``_row``.
+    species_names: DataFrame or None: name, accepted_name, ``_row``.
+    renamed:  DataFrame: table ("catches", "lengths", "species_recorded"), name (as written),
+              accepted_name, n_rows -- what species_names changed (empty when nothing).
+
+Partner intake (design section 3). ``species_names`` maps names as written (exact text after
+stripping spaces) to one accepted name; it is applied to the species of catches, lengths and
+species_recorded before any other rule, so every later stage sees accepted names only. When two
+catches rows of one haul become the same accepted name, their counts are summed (with a warning
+naming the rows). ``species_recorded`` lists, per source, the species it recorded and the years
+(year_from, year_to inclusive; a blank end is open). Zero completion then fills zeros only for
+species a haul's source recorded in the haul's year; a source with no row in the table (or a
+haul with a blank source) is taken to have recorded every species, and ``check`` says so.
+Unknown columns in these two tables are errors (they are short, hand-made tables, where an
+unknown column is almost always a misspelt one).
 
 Text cells are stripped of leading/trailing spaces. Completely empty rows (e.g. the
 ",,,," lines spreadsheets leave behind) are not records: they are skipped with a warning.
@@ -108,8 +131,24 @@ LENGTHS_COLUMNS = [
     _Col("n", "whole", gt=0, blank_fix="write how many fish were measured at this length",
          range_fix="n counts measured fish: write a whole number of 1 or more, or remove the row"),
 ]
-SPECS = {"hauls": HAULS_COLUMNS, "catches": CATCHES_COLUMNS, "lengths": LENGTHS_COLUMNS}
-ROLE_ORDER = {"hauls": 0, "catches": 1, "lengths": 2}
+SPECIES_RECORDED_COLUMNS = [
+    _Col("source", blank_fix="write the source (partner dataset) as written in the hauls table's source column"),
+    _Col("species", blank_fix="write the species the source recorded"),
+    _Col("year_from", "whole", required=False, between=(1678.0, 2261.0),
+         range_fix="write the first year the source recorded the species (four digits), or leave it "
+                   "blank if it always did"),
+    _Col("year_to", "whole", required=False, between=(1678.0, 2261.0),
+         range_fix="write the last year the source recorded the species (four digits), or leave it "
+                   "blank if it still does"),
+]
+SPECIES_NAMES_COLUMNS = [
+    _Col("name", blank_fix="write the species name as the partner wrote it in catches"),
+    _Col("accepted_name", blank_fix="write the accepted species name the name stands for"),
+]
+SPECS = {"hauls": HAULS_COLUMNS, "catches": CATCHES_COLUMNS, "lengths": LENGTHS_COLUMNS,
+         "species_recorded": SPECIES_RECORDED_COLUMNS, "species_names": SPECIES_NAMES_COLUMNS}
+ROLE_ORDER = {"species_names": 0, "hauls": 1, "catches": 2, "lengths": 3, "species_recorded": 4}
+INTAKE_ROLES = ("species_recorded", "species_names")
 
 
 # Several checks of one column parse the same text; pandera hands every check the same
@@ -198,7 +237,9 @@ def _describe(col: _Col, check: str, value: str) -> tuple[str, str]:
         return f"'{value}' is not a finite number", "write the measured value" + (
             "" if col.required else ", or leave the cell blank if unknown")
     if check == "is_whole":
-        return f"n must be a whole number of fish (found {value})", col.range_fix
+        if col.name == "n":
+            return f"n must be a whole number of fish (found {value})", col.range_fix
+        return f"{col.name} must be a whole number (found {value})", col.range_fix
     if check == "greater_than":
         return f"{col.name} must be greater than {col.gt:g} (found {value})", col.range_fix
     if check == "at_least":
@@ -328,6 +369,11 @@ class Tables:
     lengths: pd.DataFrame | None
     files: dict[str, str]
     warnings: list[Warning_] = field(default_factory=list)
+    species_recorded: pd.DataFrame | None = None
+    species_names: pd.DataFrame | None = None
+    renamed: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
+        {"table": pd.Series(dtype="str"), "name": pd.Series(dtype="str"),
+         "accepted_name": pd.Series(dtype="str"), "n_rows": pd.Series(dtype="int64")}))
 
     def is_csv(self, role: str) -> bool:
         return Path(self.files[role]).suffix.lower() in CSV_SUFFIXES
@@ -372,6 +418,8 @@ def _read_role(role: str, path, problems: ProblemList, warnings: list[Warning_])
         text = text[~blank]
     if text.empty and role == "lengths":
         warnings.append(Warning_("the lengths table has no data rows: no lengths are used", path_str))
+    elif text.empty and role in INTAKE_ROLES:
+        warnings.append(Warning_(f"the {role} table has no data rows: it changes nothing", path_str))
     elif text.empty:
         problems.add(path_str, None, None, f"the {role} table has no data rows",
                      "check that this is the right file and that it has rows under the header", is_csv)
@@ -385,7 +433,23 @@ def _read_role(role: str, path, problems: ProblemList, warnings: list[Warning_])
             warnings.append(Warning_(
                 f"column(s) {', '.join(repr(c) for c in extra)} are not used by calib and are ignored "
                 f"(hauls carries extra columns; {role} holds only {', '.join(sorted(known))})", path_str))
+    if role in INTAKE_ROLES:
+        known = [c.name for c in SPECS[role]]
+        for name in text.columns:
+            if name not in known and name != "_row":
+                problems.add(path_str, None, name, f"column '{name}' is not a {role} column",
+                             _unknown_column_fix(name, known), is_csv)
     return _Raw(role, path_str, is_csv, text)
+
+
+def _unknown_column_fix(name: str, known: list[str]) -> str:
+    import difflib
+
+    close = difflib.get_close_matches(name.strip().lower(), known, n=1, cutoff=0.6)
+    listed = ", ".join(known)
+    if close:
+        return f"rename it to '{close[0]}' if that is what it holds, or remove it (columns: {listed})"
+    return f"remove it (the columns are: {listed})"
 
 
 def _missing_column_fix(name: str, columns) -> str:
@@ -475,7 +539,7 @@ def _coerce(raw: _Raw, bad_cells: set[tuple[int, str]]) -> pd.DataFrame:
             out[name] = s.where(s != "")
     for col in SPECS[raw.role]:  # optional columns absent from the file
         if col.name not in out.columns and not col.required:
-            out[col.name] = (pd.Series(np.nan, index=text.index, dtype=float) if col.kind == "number"
+            out[col.name] = (pd.Series(np.nan, index=text.index, dtype=float) if col.kind in ("number", "whole")
                              else pd.Series(np.nan, index=text.index, dtype="str"))
     out["_row"] = (text.index + 1).astype("int64")
     for row, name in bad_cells:
@@ -614,17 +678,23 @@ def _near_duplicate_names(names: pd.Series, column: str, file: str) -> list[Warn
     for _, group in distinct.groupby(key.to_numpy()):
         if len(group) > 1:
             shown = ", ".join(f"'{g}'" for g in sorted(group))
+            hint = " (or map them to one accepted name in a species_names table)" if column == "species" else ""
             out.append(Warning_(f"{column} names {shown} differ only in case or spacing and are treated "
-                                f"as different; write them one way if they are the same", file, None, column))
+                                f"as different; write them one way if they are the same{hint}", file, None, column))
     return out
 
 
-def load_tables(hauls, catches, lengths=None) -> Tables:
-    """Read and validate the hauls, catches and (optional) lengths tables.
+def load_tables(hauls, catches, lengths=None, species_recorded=None, species_names=None) -> Tables:
+    """Read and validate the hauls, catches and optional lengths and partner intake tables.
 
     Parameters
     ----------
     hauls, catches, lengths : paths (str or Path) to CSV or Parquet files (design section 3).
+    species_recorded : optional path to a table (source, species, year_from, year_to): which
+        species each source recorded in which years; zeros are completed only for those.
+    species_names : optional path to a table (name, accepted_name) mapping names as written
+        by partners to one accepted name; applied to catches, lengths and species_recorded
+        before anything else.
 
     Returns
     -------
@@ -639,20 +709,35 @@ def load_tables(hauls, catches, lengths=None) -> Tables:
     files = {"hauls": str(hauls), "catches": str(catches)}
     if lengths is not None:
         files["lengths"] = str(lengths)
+    if species_recorded is not None:
+        files["species_recorded"] = str(species_recorded)
+    if species_names is not None:
+        files["species_names"] = str(species_names)
     raws: dict[str, _Raw] = {}
     for role, path in files.items():
         raw = _read_role(role, path, problems, warnings)
         if raw is not None:
             raws[role] = raw
     typed: dict[str, pd.DataFrame] = {}
-    for role, raw in raws.items():
+    written: dict[str, pd.Series] = {}  # species as written, before species_names
+    mapping: dict[str, str] = {}
+    for role in sorted(raws, key=lambda r: ROLE_ORDER[r]):  # species_names first: it renames the others
+        raw = raws[role]
         found = _column_problems(raw)
         problems.extend(found)
+        if mapping and role in ("catches", "lengths", "species_recorded") and "species" in raw.text.columns:
+            # Rules on single cells were checked on the names as written (so messages quote the
+            # file); every rule from here on sees accepted names only.
+            written[role] = raw.text["species"]
+            raw.text = raw.text.assign(species=raw.text["species"].map(lambda v: mapping.get(v, v)))
         if {c.name for c in SPECS[role] if c.required} <= set(raw.text.columns):
             typed[role] = _coerce(raw, {(p.row, p.column) for p in found if p.row is not None})
+            if role == "species_names":
+                mapping = _name_mapping(typed[role])
     if "hauls" in typed:
         problems.extend(_year_problems(raws["hauls"], typed["hauls"]))
     problems.extend(_cross_problems(raws, typed))
+    problems.extend(_intake_problems(raws, typed))
     if problems.problems:
         problems.problems.sort(key=lambda p: (ROLE_ORDER.get(_role_of(p.file, files), 9),
                                               -1 if p.row is None else p.row, _column_rank(p)))
@@ -662,13 +747,147 @@ def load_tables(hauls, catches, lengths=None) -> Tables:
     h["year"] = h["date"].dt.year.astype("int64")
     h = h[[c for c in h.columns if c not in ("year", "_row")] + ["year", "_row"]]
     c = typed["catches"][["haul_id", "species", "count", "_row"]]
+    if "catches" in written:
+        c, summed = _sum_renamed_duplicates(c, written["catches"], files["catches"])
+        warnings += summed
     ln = typed["lengths"][["haul_id", "species", "length_mm", "n", "_row"]] if "lengths" in typed else None
     if ln is not None:
         ln = ln.assign(n=ln["n"].astype("int64"))
     h, c = h.reset_index(drop=True), c.reset_index(drop=True)
     ln = ln.reset_index(drop=True) if ln is not None else None
+    sr = nm = None
+    if "species_recorded" in typed:
+        sr = typed["species_recorded"][["source", "species", "year_from", "year_to", "_row"]].reset_index(drop=True)
+    if "species_names" in typed:
+        nm = typed["species_names"][["name", "accepted_name", "_row"]].reset_index(drop=True)
     warnings += _load_warnings(h, c, ln, files)
-    return Tables(hauls=h, catches=c, lengths=ln, files=files, warnings=warnings)
+    warnings += _intake_warnings(h, c, sr, files)
+    tables = Tables(hauls=h, catches=c, lengths=ln, files=files, warnings=warnings,
+                    species_recorded=sr, species_names=nm)
+    if written:
+        tables.renamed = _renamed_summary(written, raws)
+    return tables
+
+
+# ----------------------------------------------------------------------------- partner intake
+
+
+def _name_mapping(names: pd.DataFrame) -> dict[str, str]:
+    """name -> accepted_name from a typed species_names frame (first row wins on conflicts,
+    which are reported as problems)."""
+    ok = names.dropna(subset=["name", "accepted_name"])
+    ok = ok.drop_duplicates("name", keep="first")
+    return dict(zip(ok["name"], ok["accepted_name"]))
+
+
+def _intake_problems(raws: dict[str, _Raw], typed: dict[str, pd.DataFrame]) -> list[Problem]:
+    """Rules of the species_names and species_recorded tables (and how they meet hauls)."""
+    out: list[Problem] = []
+    if "species_names" in typed:
+        raw, t = raws["species_names"], typed["species_names"].dropna(subset=["name", "accepted_name"])
+        first: dict[str, tuple[str, int]] = {}
+        for name, accepted, row in zip(t["name"], t["accepted_name"], t["_row"]):
+            if name in first and first[name][0] != accepted:
+                out.append(Problem(
+                    raw.path, int(row), "accepted_name",
+                    f"name '{name}' is mapped to '{first[name][0]}' in row {first[name][1]} and to "
+                    f"'{accepted}' here", "keep one accepted name per name: correct or delete one of the rows",
+                    raw.is_csv))
+            first.setdefault(name, (accepted, int(row)))
+        for name, accepted, row in zip(t["name"], t["accepted_name"], t["_row"]):
+            onward = first.get(accepted)
+            if onward is not None and onward[0] != accepted and accepted != name:
+                out.append(Problem(
+                    raw.path, int(row), "accepted_name",
+                    f"accepted name '{accepted}' of '{name}' is itself mapped to '{onward[0]}' (row {onward[1]})",
+                    f"map '{name}' directly to the final accepted name '{onward[0]}' (names are mapped "
+                    "once, not in chains)", raw.is_csv))
+    if "species_recorded" in typed:
+        raw, t = raws["species_recorded"], typed["species_recorded"]
+        backwards = t["year_from"] > t["year_to"]  # NaN (blank or bad) compares False
+        for row, lo, hi in zip(t.loc[backwards, "_row"], t.loc[backwards, "year_from"], t.loc[backwards, "year_to"]):
+            out.append(Problem(raw.path, int(row), "year_to", f"year_from {lo:.0f} is after year_to {hi:.0f}",
+                               "write the first year in year_from and the last in year_to", raw.is_csv))
+        hauls = raws.get("hauls")
+        if hauls is not None and "source" not in hauls.text.columns:
+            out.append(Problem(hauls.path, None, "source",
+                               "a species_recorded table is given but hauls has no source column",
+                               "add a source column to hauls naming each haul's partner dataset, or leave "
+                               "out species_recorded", hauls.is_csv))
+        elif hauls is not None and (hauls.text["source"] == "").all() and len(hauls.text):
+            out.append(Problem(hauls.path, None, "source",
+                               "a species_recorded table is given but every haul's source is blank",
+                               "write each haul's partner dataset in the source column, or leave out "
+                               "species_recorded", hauls.is_csv))
+    return out
+
+
+def _sum_renamed_duplicates(catches: pd.DataFrame, written: pd.Series, file: str):
+    """Sum catches rows that species_names made into one haul x species (with a warning)."""
+    dup = catches.duplicated(["haul_id", "species"], keep=False)
+    if not dup.any():
+        return catches, []
+    out = []
+    d = catches[dup].assign(_written=written.reindex(catches.index[dup]).to_numpy())
+    for sp, g in d.groupby("species", sort=True):
+        pairs = g.groupby("haul_id", sort=False)
+        hid, first = next(iter(pairs))
+        names = ", ".join(f"'{w}'" for w in sorted(set(g["_written"])))
+        out.append(Warning_(
+            f"{pairs.ngroups} haul(s) have several catches rows that species_names maps to '{sp}' "
+            f"(written {names}; e.g. haul '{hid}', {_rows(first['_row'])}); their counts are summed",
+            file, None, "species"))
+    summed = catches.groupby(["haul_id", "species"], sort=False, as_index=False).agg(
+        count=("count", "sum"), _row=("_row", "min"))
+    return summed, out
+
+
+def _renamed_summary(written: dict[str, pd.Series], raws: dict[str, _Raw]) -> pd.DataFrame:
+    rows = []
+    for role, before in written.items():
+        after = raws[role].text["species"]
+        changed = before != after
+        if changed.any():
+            counts = pd.DataFrame({"name": before[changed], "accepted_name": after[changed]}).value_counts(sort=False)
+            for (name, accepted), n in counts.sort_index().items():
+                rows.append((role, name, accepted, int(n)))
+    frame = pd.DataFrame(rows, columns=["table", "name", "accepted_name", "n_rows"])
+    return frame.astype({"table": "str", "name": "str", "accepted_name": "str", "n_rows": "int64"})
+
+
+def _name_key(names: pd.Series) -> pd.Series:
+    """Case- and spacing-blind key: names with equal keys differ only in case or spacing."""
+    return names.str.lower().str.replace(r"[\s_\-]+", " ", regex=True).str.strip()
+
+
+def _intake_warnings(hauls: pd.DataFrame, catches: pd.DataFrame, recorded: pd.DataFrame | None,
+                     files: dict[str, str]) -> list[Warning_]:
+    if recorded is None:
+        return []
+    out: list[Warning_] = []
+    rf = files["species_recorded"]
+    sources = set(hauls["source"].dropna())
+    missing = sorted(set(recorded["source"]) - sources)
+    if missing:
+        out.append(Warning_(f"source(s) {', '.join(repr(s) for s in missing)} of species_recorded have no "
+                            "hauls: their rows are not used; check the spelling against hauls' source column",
+                            rf, None, "source"))
+    caught = pd.Series(sorted(catches["species"].unique()), dtype="str")
+    by_key = dict(zip(_name_key(caught), caught))
+    absent = recorded[~recorded["species"].isin(set(caught))].drop_duplicates("species")
+    plain = []
+    for sp, key, row in zip(absent["species"], _name_key(absent["species"]), absent["_row"]):
+        if key in by_key:
+            out.append(Warning_(f"species '{sp}' is not in catches, but '{by_key[key]}' is: the names differ "
+                                "only in case or spacing and are treated as different; write them one way or "
+                                "map them in species_names", rf, int(row), "species"))
+        else:
+            plain.append(sp)
+    if plain:
+        shown = ", ".join(f"'{s}'" for s in plain[:10]) + (f" and {len(plain) - 10} more" if len(plain) > 10 else "")
+        out.append(Warning_(f"species {shown} of species_recorded never appear in catches: no records of them "
+                            "(they were never caught)", rf, None, "species"))
+    return out
 
 
 def _role_of(file: str, files: dict[str, str]) -> str:
@@ -686,36 +905,146 @@ def _column_rank(p: Problem) -> int:
 # ----------------------------------------------------------------------------- zeros
 
 
+def recorded_by_occasion(tables: Tables, species: list[str]) -> tuple[np.ndarray, np.ndarray] | None:
+    """Which species each haul's source recorded in the haul's year, per (source, year) occasion.
+
+    Returns ``(occasion, recorded)``: ``occasion`` (n_hauls,) int index of each haul's
+    (source, year), and ``recorded`` (n_occasions, len(species)) bool. Haul h recorded
+    species s when ``recorded[occasion[h], s]``. None when there is no species_recorded
+    table. A source with no row in the table (or a blank source) recorded every species.
+    Work is O(hauls + occasions x species), so it stays cheap for millions of records.
+    """
+    sr = tables.species_recorded
+    if sr is None:
+        return None
+    h = tables.hauls
+    occasion = h.groupby(["source", "year"], dropna=False, sort=False).ngroup().to_numpy()
+    first = h.drop_duplicates(["source", "year"])[["source", "year"]]  # same order as ngroup(sort=False)
+    sindex = {s: i for i, s in enumerate(species)}
+    recorded = np.ones((len(first), len(species)), dtype=bool)
+    listed = set(sr["source"])
+    lo = sr["year_from"].fillna(-np.inf).to_numpy()
+    hi = sr["year_to"].fillna(np.inf).to_numpy()
+    rows_of = {src: np.flatnonzero((sr["source"] == src).to_numpy()) for src in listed}
+    for o, (src, year) in enumerate(zip(first["source"], first["year"])):
+        if pd.isna(src) or src not in listed:
+            continue
+        recorded[o] = False
+        rows = rows_of[src]
+        inside = rows[(lo[rows] <= year) & (year <= hi[rows])]
+        for sp in sr["species"].to_numpy()[inside]:
+            if sp in sindex:
+                recorded[o, sindex[sp]] = True
+    return occasion, recorded
+
+
+def recorded_mask(tables: Tables, haul_id, species) -> np.ndarray:
+    """For each (haul_id, species) given, whether the haul's source recorded that species in
+    the haul's year according to ``tables.species_recorded``.
+
+    True everywhere when there is no species_recorded table; True for hauls whose source has
+    no row in the table (or is blank): such sources are taken to record every species.
+    ``haul_id`` and ``species`` are equal-length sequences; haul ids must be in the hauls table.
+    """
+    haul_id = np.asarray(haul_id, dtype=object)
+    species = np.asarray(species, dtype=object)
+    if tables.species_recorded is None or not len(haul_id):
+        return np.ones(len(haul_id), dtype=bool)
+    pos = pd.Index(tables.hauls["haul_id"]).get_indexer(haul_id)
+    if (pos < 0).any():
+        raise KeyError(f"haul_id '{haul_id[pos < 0][0]}' is not in the hauls table")
+    names = sorted(set(species))
+    occasion, recorded = recorded_by_occasion(tables, names)
+    return recorded[occasion[pos], pd.Index(names).get_indexer(species)]
+
+
+def zero_grid(tables: Tables, recorded: pd.DataFrame | None = None):
+    """Positions behind :func:`complete_zeros`, for code that must scale to millions of records.
+
+    Returns ``(haul_pos, species_code, species, count)``: for each completed record, the
+    position of its haul in ``tables.hauls``, the index of its species in the sorted list
+    ``species``, and its count (float). Order: hauls' order, then species.
+    ``recorded`` as in :func:`complete_zeros`.
+    """
+    hauls, catches = tables.hauls, tables.catches
+    species = sorted(catches["species"].unique())
+    n_h, n_s = len(hauls), len(species)
+    haul_index = pd.Index(hauls["haul_id"])
+    flat = haul_index.get_indexer(catches["haul_id"]).astype(np.int64) * n_s + pd.Index(species).get_indexer(
+        catches["species"])
+    counts = np.full(n_h * n_s, np.nan)
+    counts[flat] = catches["count"].to_numpy(dtype=float)
+    if recorded is not None:
+        wh = haul_index.get_indexer(recorded["haul_id"].astype("str")).astype(np.int64)
+        ws = pd.Index(species).get_indexer(recorded["species"].astype("str"))
+        keep = ~np.isnan(counts)
+        known = (wh >= 0) & (ws >= 0)  # pairs of hauls or species not in the tables add nothing
+        keep[wh[known] * n_s + ws[known]] = True
+        idx = np.flatnonzero(keep)
+    elif getattr(tables, "species_recorded", None) is not None:
+        occasion, rec = recorded_by_occasion(tables, species)
+        keep = ~np.isnan(counts) | rec[occasion].reshape(-1)
+        idx = np.flatnonzero(keep)
+    else:
+        idx = np.arange(n_h * n_s)
+    count = counts[idx]
+    count[np.isnan(count)] = 0.0
+    return idx // max(n_s, 1), idx % max(n_s, 1), species, count
+
+
+def recorded_pairs(tables: Tables) -> pd.DataFrame | None:
+    """The haul_id x species pairs whose species the haul's source recorded (in the haul's year).
+
+    None when there is no species_recorded table (every species recorded in every haul).
+    Species are those of the catches table.
+    """
+    if tables.species_recorded is None:
+        return None
+    species = sorted(tables.catches["species"].unique())
+    occasion, rec = recorded_by_occasion(tables, species)
+    hp, sc = np.nonzero(rec[occasion])
+    return pd.DataFrame({"haul_id": tables.hauls["haul_id"].to_numpy()[hp],
+                         "species": np.asarray(species, dtype=object)[sc]}).astype("str")
+
+
+def unrecorded_catches(tables: Tables) -> pd.DataFrame:
+    """Catches rows whose species the haul's source did not record in the haul's year.
+
+    Such rows are kept by :func:`complete_zeros` (they are observations), but without the
+    zeros of that source a mean over them would be biased upward; ``convert`` rejects them
+    and ``check`` warns. Empty when there is no species_recorded table.
+    """
+    c = tables.catches
+    if tables.species_recorded is None:
+        return c.iloc[:0]
+    return c[~recorded_mask(tables, c["haul_id"], c["species"])]
+
+
 def complete_zeros(tables: Tables, recorded: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per haul x species with the count, zeros filled where the species is absent.
 
-    A species missing from a listed haul is a true zero (design section 3). Species are
-    every species in the catches table. Rows follow the hauls' order, species sorted.
+    A species missing from a listed haul is a true zero (design section 3), but only where
+    the species was recorded (species_recorded). Species are every species in the catches
+    table. Rows follow the hauls' order, species sorted.
 
     Parameters
     ----------
     recorded : optional DataFrame with columns haul_id, species listing the pairs for
         which the species was recorded (looked for) in that haul. Zeros are then filled
         only for those pairs; rows present in catches are always kept. None (default)
-        means every species was recorded in every haul. (Hook for the species_recorded
-        table.)
+        means: the pairs of the tables' species_recorded table when one was loaded
+        (:func:`recorded_mask`), else every species recorded in every haul.
 
     Returns
     -------
     DataFrame with columns haul_id (str), species (str), count (float, fish).
     """
-    species = sorted(tables.catches["species"].unique())
-    grid = pd.MultiIndex.from_product([tables.hauls["haul_id"], species], names=["haul_id", "species"])
-    counts = tables.catches.set_index(["haul_id", "species"])["count"]
-    full = counts.reindex(grid)
-    if recorded is not None:
-        wanted = pd.MultiIndex.from_frame(recorded[["haul_id", "species"]].astype("str"))
-        keep = full.notna().to_numpy() | grid.isin(wanted)
-        full = full[keep]
-    out = full.fillna(0.0).astype(float).reset_index()
-    out["haul_id"] = out["haul_id"].astype("str")
-    out["species"] = out["species"].astype("str")
-    return out
+    hp, sc, species, count = zero_grid(tables, recorded)
+    return pd.DataFrame({
+        "haul_id": pd.array(tables.hauls["haul_id"].to_numpy(dtype=object), dtype="str").take(hp),
+        "species": pd.array(species, dtype="str").take(sc),
+        "count": count,
+    })
 
 
 # ----------------------------------------------------------------------------- fit-only rules

@@ -1,0 +1,811 @@
+"""Stage 5: express survey records in reference-gear units (``calib convert``).
+
+Reads a factor set (posterior draws of theta = log(q_gear / q_ref), factor = exp(-theta))
+and survey tables, and gives every haul x species record (zeros completed where the
+species was recorded) its catch per unit effort in reference-gear units:
+
+    cpue        = count / effort                       (per effort unit of the haul's gear)
+    cpue_ref[d] = cpue x factor[d]                     for every posterior draw d used
+
+Because one species x gear has one factor, the record's median and equal-tailed interval
+are cpue times the factor's quantiles: the sample quantile numpy computes by default
+(linear interpolation between order statistics, definition 7 of Hyndman & Fan 1996,
+"Sample quantiles in statistical packages", The American Statistician 50) commutes with
+multiplication by a non-negative constant, since scaling keeps the order of the draws. So
+records x draws is never built: cost O(records + factors x draws).
+The draws used are stored once per factor (``factor_draws.parquet``: species, gear, draw,
+factor); draw d of every factor comes from the same posterior sample, so a later step can
+carry conversion uncertainty jointly across species and gears. Reference-gear records pass
+through with factor exactly 1 (stored as draws of 1); a zero count converts to zero.
+
+Records that cannot be converted go to ``rejected.csv`` with a reason; none is dropped:
+rows in = rows converted + rows rejected (checked on every run). Reasons, in the order
+they are tested (a record gets the first that applies):
+
+    not_recorded        the catches row is of a species its source did not record that year
+                        (species_recorded); without that source's zeros it would bias a mean
+    no_factor           the factor set has no factor for that species x gear
+    not_species_level   only length- or covariate-specific factors exist for it (converting
+                        by length class or covariate level is not supported yet)
+    no_draws            the factor table lists it but posterior.nc holds no draws for it
+    draws_not_finite    its draws are not finite (e.g. a baseline could not estimate it)
+    factor_fail         its status is ``fail`` (converted, with factor_status 'fail', when
+                        ``allow_unconverged``)
+    effort_unit         the haul's effort unit differs from the one the factor was fitted with
+
+A zero of a species x gear without a usable factor is rejected too, not passed as zero:
+keeping that gear's zeros while rejecting its catches would bias any mean downward.
+
+Records outside the calibration's domain are converted and flagged in ``domain_flag``
+(blank when inside): months of the year the gear's calibration groups never fished,
+numeric covariates outside the range the gear's calibration hauls covered, and levels of
+categorical covariates those hauls never had. Legacy years are expected to lie outside
+it and are not rejected. The domain comes from the factor set's manifest (``"domain"``,
+written at fit time by :func:`calibration_domain`); for older factor sets it is rebuilt
+from the calibration tables named in the manifest when they are unchanged, else no
+record is flagged and the conversion says so.
+"""
+
+from __future__ import annotations
+
+import argparse
+import calendar
+import hashlib
+import json
+import os
+import textwrap
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from calib.errors import InputError, Problem
+
+# Hauls columns that describe where, when and how a haul was made, not the conditions it
+# sampled: they are never domain covariates.
+STRUCTURAL_COLUMNS = ("haul_id", "gear", "date", "effort", "effort_unit", "pair_id", "site", "stratum",
+                      "stratum_area", "latitude", "longitude", "source", "year", "_row")
+# A text column with more distinct values than this among the calibration hauls is taken for
+# an identifier (station code, crew, notes) rather than a covariate (common practice, no source).
+MAX_DOMAIN_LEVELS = 20
+CSV_MAX_ROWS = 1_000_000  # records.csv is written too when there are at most this many records
+
+ADDED_COLUMNS = ["species", "count", "cpue", "cpue_ref_median", "cpue_ref_lower", "cpue_ref_upper",
+                 "factor_id", "factor_gear", "factor_species", "factor_status", "domain_flag"]
+REJECT_CODES = ("not_recorded", "no_factor", "not_species_level", "no_draws", "draws_not_finite",
+                "factor_fail", "effort_unit")
+REJECT_LABELS = {
+    "not_recorded": "species not recorded by the haul's source that year",
+    "no_factor": "no factor for that species x gear",
+    "not_species_level": "only length- or covariate-specific factors",
+    "no_draws": "no draws in posterior.nc",
+    "draws_not_finite": "factor draws not finite",
+    "factor_fail": "factor status fail",
+    "effort_unit": "effort unit differs from the factor's",
+}
+_CODE = {name: i + 1 for i, name in enumerate(REJECT_CODES)}
+DRAW_COLUMNS = ["species", "gear", "draw", "factor", "posterior_chain", "posterior_draw"]
+
+CAUTION = (
+    "Converted values hold only as far as the conversion factors do: for the gears, sizes, "
+    "habitats and seasons of the calibration study (see domain_flag). Defer to the survey "
+    "program's own standards and to qualified review before any management use."
+)
+
+
+# ----------------------------------------------------------------------------- domain
+
+
+def _usable_calibration_hauls(hauls: pd.DataFrame) -> pd.DataFrame:
+    """Calibration hauls in groups where two or more gears fished (the groups a fit uses)."""
+    from calib.cells import calibration_hauls
+
+    cal = calibration_hauls(hauls)
+    n_gears = cal.groupby("pair_id")["gear"].transform("nunique")
+    return cal[n_gears >= 2]
+
+
+def calibration_domain(hauls: pd.DataFrame, columns: list[str] | None = None,
+                       max_levels: int = MAX_DOMAIN_LEVELS) -> dict:
+    """What the calibration groups covered, per gear: months, covariate ranges and levels.
+
+    Parameters
+    ----------
+    hauls : validated hauls table (``Tables.hauls``) of the calibration data; only hauls in
+        calibration groups with two or more gears count.
+    columns : covariate columns to describe; default every hauls column that is not
+        structural (haul_id, gear, date, effort, effort_unit, pair_id, site, stratum,
+        stratum_area, latitude, longitude, source, year), skipping text columns with more
+        than ``max_levels`` distinct values (identifiers, not covariates).
+
+    Returns
+    -------
+    JSON-ready dict::
+
+        {"numeric": [col, ...], "categorical": [col, ...], "skipped": {col: why},
+         "by_gear": {gear: {"n_hauls": int, "months": [1..12],
+                            "numeric": {col: [min, max]}, "categorical": {col: [level, ...]}}}}
+
+    Store it in the factor set manifest under ``"domain"`` at fit time.
+    """
+    cal = _usable_calibration_hauls(hauls)
+    skipped: dict[str, str] = {}
+    if columns is None:
+        candidates = [c for c in hauls.columns if c not in STRUCTURAL_COLUMNS]
+    else:
+        missing = [c for c in columns if c not in hauls.columns]
+        if missing:
+            raise ValueError(f"domain column(s) {missing} are not in the hauls table")
+        candidates = list(columns)
+    numeric, categorical = [], []
+    for col in candidates:
+        values = cal[col].dropna()
+        if pd.api.types.is_bool_dtype(cal[col]):
+            categorical.append(col)
+        elif pd.api.types.is_numeric_dtype(cal[col]):
+            numeric.append(col)
+        elif values.nunique() > max_levels and columns is None:
+            skipped[col] = (f"{values.nunique()} distinct values in the calibration hauls (more than "
+                            f"{max_levels}): taken for an identifier, not a covariate")
+        else:
+            categorical.append(col)
+    by_gear = {}
+    for gear, g in cal.groupby("gear", sort=True):
+        entry = {"n_hauls": int(len(g)),
+                 "months": sorted(int(m) for m in g["date"].dt.month.dropna().unique()),
+                 "numeric": {}, "categorical": {}}
+        for col in numeric:
+            v = g[col].dropna().astype(float)
+            if len(v):
+                entry["numeric"][col] = [float(v.min()), float(v.max())]
+        for col in categorical:
+            levels = sorted(str(x) for x in g[col].dropna().unique())
+            if levels:
+                entry["categorical"][col] = levels
+        by_gear[str(gear)] = entry
+    return {"numeric": numeric, "categorical": categorical, "skipped": skipped, "by_gear": by_gear}
+
+
+def _months_text(months: list[int]) -> str:
+    """[4, 5, 6, 9] -> 'Apr-Jun, Sep'."""
+    if not months:
+        return "none"
+    runs, start, prev = [], months[0], months[0]
+    for m in months[1:] + [None]:
+        if m is not None and m == prev + 1:
+            prev = m
+            continue
+        a, b = calendar.month_abbr[start], calendar.month_abbr[prev]
+        runs.append(a if start == prev else f"{a}-{b}")
+        if m is not None:
+            start = prev = m
+    return ", ".join(runs)
+
+
+def _domain_from_inputs(manifest: dict) -> tuple[dict | None, str]:
+    """Rebuild the domain from the calibration tables a factor set names, if unchanged."""
+    from calib.factors import file_sha256
+    from calib.tables import load_tables
+
+    inputs = manifest.get("inputs") or {}
+    h, c = inputs.get("hauls"), inputs.get("catches")
+    if not h or not c:
+        return None, "the factor set names no calibration hauls file"
+    paths = {role: Path(v["path"]) for role, v in (("hauls", h), ("catches", c))}
+    for role, p in paths.items():
+        if not p.is_file():
+            return None, f"the calibration {role} file named in the factor set ({p}) was not found"
+        want = inputs[role].get("sha256")
+        if want and file_sha256(p) != want:
+            return None, f"the calibration {role} file {p} changed since the fit (its hash differs)"
+    try:
+        cal_tables = load_tables(paths["hauls"], paths["catches"])
+    except InputError:
+        return None, f"the calibration tables {paths['hauls']} could not be read"
+    return calibration_domain(cal_tables.hauls), f"rebuilt from the calibration hauls {paths['hauls']}"
+
+
+def _domain_flags(hauls: pd.DataFrame, domain: dict, reference: str) -> tuple[np.ndarray, list[str]]:
+    """Text flag per haul ('' inside the domain) and notes on columns that could not be checked.
+
+    Everything the domain looks at (gear, date, covariates) belongs to the haul, so flags are
+    worked out once per haul and handed to the haul's records (O(hauls), not O(records)).
+    Reference-gear hauls are never flagged: their records are not converted.
+    """
+    n = len(hauls)
+    flag = np.full(n, "", dtype=object)
+    notes: list[str] = []
+    if n == 0:
+        return flag, notes
+
+    def add(mask: np.ndarray, text) -> None:
+        if not mask.any():
+            return
+        old = flag[mask]
+        new = text if isinstance(text, str) else np.asarray(text, dtype=object)
+        flag[mask] = np.where(old == "", new, old + "; " + new)
+
+    numeric_cols = domain.get("numeric", [])
+    for col in numeric_cols + domain.get("categorical", []):
+        if col not in hauls.columns:
+            notes.append(f"domain covariate '{col}' is not in the survey hauls: not checked")
+        elif col in numeric_cols and not pd.api.types.is_numeric_dtype(hauls[col]):
+            notes.append(f"domain covariate '{col}' is numeric in the calibration but text in the survey "
+                         "hauls: not checked")
+    gear = hauls["gear"]
+    month = hauls["date"].dt.month.to_numpy(dtype=float)
+    for g, d in domain.get("by_gear", {}).items():
+        if g == reference:
+            continue
+        sel = (gear == g).to_numpy()
+        if not sel.any():
+            continue
+        months = d.get("months", [])
+        out = sel & ~np.isnan(month) & ~np.isin(month, months)
+        if out.any():
+            label = _months_text(months)
+            text = np.array([""] + [f"month {calendar.month_abbr[m]} outside the calibrated months ({label})"
+                                    for m in range(1, 13)], dtype=object)
+            add(out, text[month[out].astype(int)])
+        for col, (lo, hi) in d.get("numeric", {}).items():
+            if col not in hauls.columns or not pd.api.types.is_numeric_dtype(hauls[col]):
+                continue
+            v = hauls[col].to_numpy(dtype=float)
+            add(sel & (v < lo), f"{col} below the calibrated range ({lo:g} to {hi:g})")
+            add(sel & (v > hi), f"{col} above the calibrated range ({lo:g} to {hi:g})")
+        for col, levels in d.get("categorical", {}).items():
+            if col not in hauls.columns:
+                continue
+            values = hauls[col].astype("string")
+            out = sel & values.notna().to_numpy() & ~values.isin(levels).fillna(False).to_numpy(dtype=bool)
+            if out.any():
+                listed = ", ".join(levels)
+                odd = values[out]
+                text = {v: f"{col} '{v}' not in the calibration ({listed})" for v in odd.unique()}
+                add(out, odd.map(text).to_numpy(dtype=object))
+    return flag, notes
+
+
+# ----------------------------------------------------------------------------- result
+
+
+@dataclass
+class Conversion:
+    """Survey records in reference-gear units, what was rejected, and the draws used.
+
+    Attributes
+    ----------
+    records : one row per converted haul x species: every hauls column, then species,
+        count (fish, may be raised), cpue (count / effort, per effort unit of the haul),
+        cpue_ref_median / cpue_ref_lower / cpue_ref_upper (reference-gear cpue: cpue times
+        the factor's median and equal-tailed ``interval`` quantiles over the draws used),
+        factor_id (the factor set's id), factor_gear and factor_species (the key of the
+        factor used in ``factor_draws``), factor_status (ok / warn / fail / reference) and
+        domain_flag ('' inside the calibration's domain, else why not). Text columns are
+        pandas categoricals (a small code per record; dictionary-encoded in records.parquet),
+        so millions of records stay small.
+    rejected : every record not converted: the hauls columns, species, count, cpue,
+        reason_code (one of ``REJECT_CODES``) and reason (what is wrong and the fix).
+    factor_draws : long table species, gear, draw (0..n-1), factor, posterior_chain,
+        posterior_draw: the draws used, once per factor used (reference factors are 1).
+    factors : one row per factor used: species, gear, factor_status, effort_unit,
+        factor_median, factor_lower, factor_upper (over the draws used), n_records,
+        n_domain_flagged.
+    manifest : factor_set_id, input hashes, counts, draws, interval, domain, timestamp, ...
+    notes : things the user should know about this conversion.
+    """
+
+    records: pd.DataFrame
+    rejected: pd.DataFrame
+    factor_draws: pd.DataFrame
+    factors: pd.DataFrame
+    manifest: dict
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def n_in(self) -> int:
+        return self.manifest["counts"]["records_in"]
+
+    @property
+    def n_converted(self) -> int:
+        return self.manifest["counts"]["converted"]
+
+    @property
+    def n_rejected(self) -> int:
+        return self.manifest["counts"]["rejected"]
+
+    def summary(self) -> str:
+        """Plain-text account of the conversion: counts in, converted, rejected (by reason)."""
+        m, c = self.manifest, self.manifest["counts"]
+        d = m["draws"]
+        lines = [
+            f"Conversion with factor set {m['factor_set_id']} (reference gear: {m['reference']})",
+            f"  records in (haul x species, zeros completed where recorded): {c['records_in']}",
+            f"  converted: {c['converted']} ({c['reference_pass_through']} reference-gear records passed "
+            "through with factor 1)",
+            f"  rejected:  {c['rejected']}",
+        ]
+        for code, n in c["rejected_by_reason"].items():
+            lines.append(f"    {REJECT_LABELS[code]}: {n}")
+        lines.append(f"  outside the calibration's domain (flagged in domain_flag, still converted): "
+                     f"{c['domain_flagged']}")
+        if c.get("unconverged_converted"):
+            lines.append(f"  converted with a 'fail' factor (--allow-unconverged): {c['unconverged_converted']}")
+        thinning = f"a random subset, seed {d['seed']}" if d["thinned"] else "all of them"
+        lines.append(f"  draws per factor: {d['used']} of {d['available']} ({thinning}); "
+                     f"interval {m['interval']:g}")
+        for note in self.notes:
+            lines.append(f"  note: {note}")
+        lines.append("  " + CAUTION)
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        return (f"<Conversion {self.manifest['factor_set_id']}: {self.n_in} in, {self.n_converted} converted, "
+                f"{self.n_rejected} rejected>")
+
+    def save(self, directory: str | os.PathLike) -> Path:
+        """Write the conversion atomically into ``directory``.
+
+        Files: records.parquet (always), records.csv (when at most 1,000,000 records),
+        rejected.csv (always, header only when nothing was rejected), factor_draws.parquet,
+        factors_used.csv and manifest.json. Refuses a directory that holds the factor set
+        or an input table (it would be replaced).
+        """
+        from calib.outputs import atomic_directory
+
+        directory = Path(directory)
+        target = directory.resolve()
+        protected = [p for p in [self.manifest.get("factor_set_dir")]
+                     + [v["path"] for v in self.manifest["inputs"].values()] if p]
+        for p in protected:
+            pr = Path(p).resolve()
+            if pr == target or target in pr.parents:
+                raise InputError([Problem(str(directory), None, None,
+                                          f"the output directory holds an input ({p}) and would be replaced",
+                                          "choose a new directory for --out")])
+        with atomic_directory(directory) as tmp:
+            self.records.to_parquet(tmp / "records.parquet", index=False)
+            if len(self.records) <= CSV_MAX_ROWS:
+                _csv_ready(self.records).to_csv(tmp / "records.csv", index=False, float_format="%.6g")
+            _csv_ready(self.rejected).to_csv(tmp / "rejected.csv", index=False, float_format="%.6g")
+            self.factor_draws.to_parquet(tmp / "factor_draws.parquet", index=False)
+            self.factors.to_csv(tmp / "factors_used.csv", index=False, float_format="%.6g")
+            (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
+        return directory
+
+
+def _csv_ready(frame: pd.DataFrame) -> pd.DataFrame:
+    """Dates as ISO text (YYYY-MM-DD, with the time only where one was given)."""
+    out = frame.copy(deep=False)
+    for col in out.columns:
+        if pd.api.types.is_datetime64_any_dtype(out[col]):
+            s = out[col]
+            has_time = (s.dropna() != s.dropna().dt.normalize()).any()
+            out[col] = s.dt.strftime("%Y-%m-%dT%H:%M:%S" if has_time else "%Y-%m-%d")
+    return out
+
+
+# ----------------------------------------------------------------------------- convert
+
+
+def _categories(codes: np.ndarray, labels: list[str]) -> pd.Categorical:
+    """labels[codes] as a pandas Categorical (labels may repeat; they are merged)."""
+    remap, uniq = pd.factorize(np.asarray(labels, dtype=object))  # hashing: cheap for a million labels
+    return pd.Categorical.from_codes(remap[codes] if len(codes) else codes.astype(np.int64),
+                                     categories=pd.Index(uniq, dtype="str"))
+
+
+def _categorical_text(hauls: pd.DataFrame) -> pd.DataFrame:
+    """Text columns of hauls as categoricals: records repeat each haul once per species, and a
+    categorical stores a small code per record instead of the text (dictionary-encoded in Parquet)."""
+    out = hauls.copy()
+    for col in out.columns:
+        if not pd.api.types.is_numeric_dtype(out[col]) and not pd.api.types.is_datetime64_any_dtype(out[col]) \
+                and not pd.api.types.is_bool_dtype(out[col]):
+            out[col] = out[col].astype("category")
+    return out
+
+
+def _blank(s: pd.Series) -> pd.Series:
+    return s.isna() | (s.astype("string").str.strip() == "")
+
+
+def _select_draws(n_total: int, draws: int | None, seed: int, where: str) -> np.ndarray:
+    if draws is None:
+        return np.arange(n_total)
+    if draws > n_total:
+        raise InputError([Problem(where, None, None,
+                                  f"{draws} draws asked for, but the factor set holds {n_total}",
+                                  f"give --draws {n_total} or fewer, or leave it out to use all")])
+    rng = np.random.default_rng(seed)
+    return np.sort(rng.choice(n_total, size=draws, replace=False))
+
+
+def _input_hashes(files: dict[str, str]) -> dict:
+    from calib.factors import file_sha256
+
+    return {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in files.items()
+            if p is not None and Path(p).is_file()}
+
+
+def convert(factors, hauls, catches=None, *, species_recorded=None, species_names=None,
+            draws: int | None = None, allow_unconverged: bool = False, interval: float | None = None,
+            seed: int = 0) -> Conversion:
+    """Express survey records in reference-gear units, draw by draw.
+
+    Parameters
+    ----------
+    factors : a :class:`calib.factors.FactorSet` or the directory one was saved in.
+    hauls, catches : paths to the survey tables (CSV or Parquet; design section 3), or a
+        ``calib.tables.Tables`` as ``hauls`` (then ``catches`` and the intake tables are
+        ignored). Plain survey hauls (blank pair_id) and calibration hauls are both converted.
+        Non-integer (raised) counts are accepted.
+    species_recorded, species_names : optional paths to the partner intake tables.
+    draws : number of posterior draws to use per factor; None (default) uses all, otherwise
+        a seeded random subset of that size (the same draws for every factor).
+    allow_unconverged : convert with factors whose status is ``fail`` (flagged in
+        factor_status) instead of rejecting their records.
+    interval : central interval level of cpue_ref_lower/upper; default the factor set's.
+    seed : seed of the draw subset.
+
+    Returns
+    -------
+    Conversion (see its docstring). ``conversion.n_in == n_converted + n_rejected`` always.
+
+    Raises
+    ------
+    InputError for unreadable or invalid tables or factor set, or more draws than it holds.
+    """
+    from calib.factors import FactorSet, software_versions, utc_timestamp
+    from calib.tables import Tables, load_tables, recorded_by_occasion, zero_grid
+
+    factor_dir = None
+    if not isinstance(factors, FactorSet):
+        factor_dir = str(factors)
+        factors = FactorSet.load(factors)
+    fs = factors
+    if interval is None:
+        interval = float(fs.manifest.get("settings", {}).get("interval", 0.9))
+    if not 0 < interval < 1:
+        raise ValueError(f"interval must be between 0 and 1 (e.g. 0.9), not {interval}")
+    if draws is not None and (int(draws) != draws or draws < 1):
+        raise ValueError(f"draws must be a positive whole number, not {draws}")
+    tables = hauls if isinstance(hauls, Tables) else load_tables(
+        hauls, catches, species_recorded=species_recorded, species_names=species_names)
+    reference = fs.reference
+    posterior_file = str(Path(factor_dir) / "posterior.nc") if factor_dir else "factor set posterior"
+
+    h = tables.hauls.drop(columns=["_row"])
+    clash = [c for c in h.columns if c in ADDED_COLUMNS or c in ("reason", "reason_code")]
+    if clash:
+        raise InputError([Problem(tables.files["hauls"], None, c,
+                                  f"hauls column '{c}' has the name of a column convert adds",
+                                  "rename that column", tables.is_csv("hauls")) for c in clash])
+
+    # --- records: every haul x species, zeros where recorded, as positions (no string lookups)
+    hp, sc, species_all, count = zero_grid(tables)
+    n_in = len(hp)
+    n_sp = max(len(species_all), 1)
+    occasions = recorded_by_occasion(tables, species_all)
+    effort = h["effort"].to_numpy(dtype=float)
+
+    # --- draws: one subset of posterior samples, shared by every factor
+    theta = fs.idata.posterior["theta"].transpose("chain", "draw", "gear", "species")
+    n_chain, n_draw = theta.sizes["chain"], theta.sizes["draw"]
+    n_total = n_chain * n_draw
+    idx = _select_draws(n_total, draws, seed, posterior_file)
+    theta_all = theta.values.reshape(n_total, theta.sizes["gear"], theta.sizes["species"])
+    gpos = {str(g): i for i, g in enumerate(theta.coords["gear"].values)}
+    post_species = [str(s) for s in theta.coords["species"].values]
+    spos = {s: i for i, s in enumerate(post_species)}
+    probs = [(1 - interval) / 2, 0.5, 1 - (1 - interval) / 2]
+
+    table = fs.table
+    species_level = table[_blank(table["length_mm"]) & _blank(table["covariate"])] if len(table) else table
+    dup = species_level.duplicated(["species", "gear"], keep=False)
+    if dup.any():
+        r = species_level[dup].iloc[0]
+        raise InputError([Problem(f"{factor_dir or 'factor set'}/factors.csv", None, None,
+                                  f"the factor table has several species-level factors for '{r['species']}' "
+                                  f"with '{r['gear']}'", "use a factor set written by `calib fit`")])
+    row_of = {(s, g): r for s, g, r in zip(species_level["species"], species_level["gear"],
+                                          species_level.to_dict("records"))}
+    any_row = set(zip(table["species"], table["gear"]))
+    ref_unit = fs.manifest.get("reference_effort_unit") or None
+
+    # --- one decision per species x gear present in the records
+    gears_all = sorted(h["gear"].unique())
+    units_all = sorted(h["effort_unit"].unique())
+    g_h = pd.Categorical(h["gear"], categories=gears_all).codes.astype(np.int64)
+    u_h = pd.Categorical(h["effort_unit"], categories=units_all).codes.astype(np.int64)
+    ucombo, inv = np.unique(g_h[hp] * n_sp + sc, return_inverse=True)
+    inv = inv.reshape(-1)
+    k = len(ucombo)
+    c_code = np.zeros(k, dtype=np.int8)  # 0: convertible, else 1 + index in REJECT_CODES
+    c_unit = np.full(k, None, dtype=object)
+    c_need = np.full(k, -1, dtype=np.int64)  # unit code the records must have; -1: not checked
+    c_status = np.full(k, "", dtype=object)
+    c_q = np.full((k, 3), np.nan)
+    c_why = np.full(k, "", dtype=object)  # the factor table's reason, quoted in rejections
+    c_key = []
+    used_draws: dict[int, np.ndarray] = {}
+    for j, cc in enumerate(ucombo):
+        g, s = gears_all[cc // n_sp], species_all[cc % n_sp]
+        c_key.append((s, g))
+        if g == reference:
+            c_status[j], c_unit[j] = "reference", ref_unit
+            c_q[j] = 1.0
+            used_draws[j] = np.ones(len(idx))
+        else:
+            row = row_of.get((s, g))
+            if row is None:
+                c_code[j] = _CODE["not_species_level" if (s, g) in any_row else "no_factor"]
+                continue
+            c_status[j] = str(row["status"])
+            c_why[j] = "" if pd.isna(row.get("reason")) else str(row.get("reason"))
+            unit = row.get("effort_unit")
+            c_unit[j] = None if pd.isna(unit) or str(unit).strip() == "" else str(unit)
+            if g not in gpos or s not in spos:
+                c_code[j] = _CODE["no_draws"]
+                continue
+            f_all = np.exp(-theta_all[:, gpos[g], spos[s]])
+            if not np.isfinite(f_all).all():
+                c_code[j] = _CODE["draws_not_finite"]
+                continue
+            if c_status[j] == "fail" and not allow_unconverged:
+                c_code[j] = _CODE["factor_fail"]
+                continue
+            used_draws[j] = f_all[idx]
+            c_q[j] = np.quantile(used_draws[j], probs)
+        if c_unit[j] is not None:
+            c_need[j] = units_all.index(c_unit[j]) if c_unit[j] in units_all else len(units_all)
+
+    code = np.zeros(n_in, dtype=np.int8)
+    if occasions is not None:
+        occasion, recorded = occasions
+        code[~recorded[occasion[hp], sc]] = _CODE["not_recorded"]
+    combo_code = c_code[inv]
+    fill = (code == 0) & (combo_code != 0)
+    code[fill] = combo_code[fill]
+    need = c_need[inv]
+    code[(code == 0) & (need >= 0) & (u_h[hp] != need)] = _CODE["effort_unit"]
+    ok = code == 0
+    del combo_code, fill, need
+
+    # --- converted records
+    hc = _categorical_text(h)
+    hp_ok, j_ok = hp[ok], inv[ok]
+    rec = hc.take(hp_ok).reset_index(drop=True)
+    rec["species"] = _categories(sc[ok], species_all)
+    rec["count"] = count[ok]
+    cpue = count[ok] / effort[hp_ok]
+    rec["cpue"] = cpue
+    q = c_q[j_ok]
+    rec["cpue_ref_median"] = cpue * q[:, 1]
+    rec["cpue_ref_lower"] = cpue * q[:, 0]
+    rec["cpue_ref_upper"] = cpue * q[:, 2]
+    del q
+    rec["factor_id"] = _categories(np.zeros(len(rec), dtype=np.int64), [fs.id])
+    rec["factor_gear"] = rec["gear"].copy()
+    rec["factor_species"] = rec["species"].copy()
+    rec["factor_status"] = _categories(j_ok, [str(x) for x in c_status])
+
+    domain = fs.manifest.get("domain")
+    notes: list[str] = []
+    if domain:
+        domain_source = "factor set manifest"
+    else:
+        domain, domain_source = _domain_from_inputs(fs.manifest)
+        if domain is None:
+            notes.append(f"no calibration domain: {domain_source}; no record is flagged in domain_flag")
+        else:
+            notes.append(f"calibration domain {domain_source} (the factor set does not store one)")
+    if domain:
+        flag_h, dnotes = _domain_flags(h, domain, reference)
+        notes += dnotes
+        for col, why in (domain.get("skipped") or {}).items():
+            notes.append(f"column '{col}' not used as a domain covariate: {why}")
+    else:
+        flag_h = np.full(len(h), "", dtype=object)
+    flagged_h = flag_h != ""
+    converted_gears = {c_key[j][1] for j in np.unique(j_ok)} - {reference}
+    if domain:
+        for g in sorted(converted_gears - set(domain.get("by_gear", {}))):
+            notes.append(f"the calibration domain has no entry for gear '{g}': its records are not checked "
+                         "against it (domain_flag blank)")
+    no_unit = sorted({c_key[j][1] for j in np.unique(j_ok) if c_unit[j] is None})
+    if no_unit:
+        notes.append(f"the factor set gives no effort unit for {', '.join(repr(g) for g in no_unit)}: "
+                     "effort units of those records were not checked")
+    rec["domain_flag"] = _categories(hp_ok, [str(x) for x in flag_h])
+    flagged = flagged_h[hp_ok]
+
+    # --- rejected records, each with its reason
+    bad = ~ok
+    hp_bad = hp[bad]
+    rej = hc.take(hp_bad).reset_index(drop=True)
+    rej["species"] = _categories(sc[bad], species_all)
+    rej["count"] = count[bad]
+    rej["cpue"] = count[bad] / effort[hp_bad]
+    rej["reason_code"] = _categories(code[bad].astype(np.int64) - 1, list(REJECT_CODES))
+    rej["reason"] = _reason_texts(h, hp_bad, code[bad], inv[bad], c_key, c_unit, c_why, u_h, units_all,
+                                  occasions, fs.id, sorted(set(table["species"]) | set(post_species)))
+
+    # --- factors used and their draws
+    rows, draw_frames = [], []
+    counts_used = np.bincount(j_ok, minlength=k)
+    flagged_used = np.bincount(j_ok[flagged], minlength=k)
+    for j in np.flatnonzero(counts_used):
+        s, g = c_key[j]
+        rows.append({"species": s, "gear": g, "factor_status": c_status[j], "effort_unit": c_unit[j] or "",
+                     "factor_median": c_q[j, 1], "factor_lower": c_q[j, 0], "factor_upper": c_q[j, 2],
+                     "n_draws": len(idx), "n_records": int(counts_used[j]),
+                     "n_domain_flagged": int(flagged_used[j])})
+        draw_frames.append(pd.DataFrame({"species": s, "gear": g, "draw": np.arange(len(idx)),
+                                         "factor": used_draws[j], "posterior_chain": idx // n_draw,
+                                         "posterior_draw": idx % n_draw}))
+    factors_used = pd.DataFrame(rows, columns=["species", "gear", "factor_status", "effort_unit", "factor_median",
+                                               "factor_lower", "factor_upper", "n_draws", "n_records",
+                                               "n_domain_flagged"])
+    factor_draws = (pd.concat(draw_frames, ignore_index=True) if draw_frames
+                    else pd.DataFrame({c: pd.Series(dtype="float" if c == "factor" else "int64")
+                                       for c in DRAW_COLUMNS}).astype({"species": "str", "gear": "str"}))
+    factor_draws = factor_draws[DRAW_COLUMNS]
+
+    n_conv, n_rej = len(rec), len(rej)
+    if n_conv + n_rej != n_in:  # pragma: no cover - an internal error, never expected
+        raise AssertionError(f"records in {n_in} != converted {n_conv} + rejected {n_rej}")
+    by_reason = np.bincount(code[bad].astype(np.int64), minlength=len(REJECT_CODES) + 1)
+    per_status = {st: int(counts_used[c_status == st].sum()) for st in ("reference", "fail")}
+    manifest = {
+        "tool": "calib",
+        "step": "convert",
+        "factor_set_id": fs.id,
+        "factor_set_dir": factor_dir,
+        "reference": reference,
+        "reference_effort_unit": ref_unit,
+        "inputs": _input_hashes(tables.files),
+        "counts": {
+            "records_in": int(n_in),
+            "converted": int(n_conv),
+            "rejected": int(n_rej),
+            "rejected_by_reason": {c: int(by_reason[_CODE[c]]) for c in REJECT_CODES if by_reason[_CODE[c]]},
+            "reference_pass_through": per_status["reference"],
+            "unconverged_converted": per_status["fail"],
+            "domain_flagged": int(flagged.sum()),
+        },
+        "draws": {"available": int(n_total), "used": int(len(idx)), "thinned": draws is not None,
+                  "seed": int(seed) if draws is not None else None},
+        "interval": float(interval),
+        "allow_unconverged": bool(allow_unconverged),
+        "domain": {"source": domain_source if domain else None, **(domain or {})},
+        "notes": notes,
+        "versions": software_versions(),
+    }
+    manifest["conversion_id"] = "cv-" + hashlib.sha256(
+        json.dumps(manifest, sort_keys=True, default=str).encode()).hexdigest()[:16]
+    manifest["timestamp"] = utc_timestamp()
+    return Conversion(records=rec, rejected=rej, factor_draws=factor_draws, factors=factors_used,
+                      manifest=manifest, notes=notes)
+
+
+def _reason_texts(h: pd.DataFrame, hp: np.ndarray, code: np.ndarray, j: np.ndarray, c_key, c_unit, c_why,
+                  u_h: np.ndarray, units_all: list[str], occasions, factor_id: str, known_species: list[str]):
+    """One readable reason (what is wrong and what to do) per rejected record.
+
+    Reasons depend only on (reason, species x gear, effort unit, source x year), so each
+    distinct text is written once and handed to its records.
+    """
+    if not len(hp):
+        return _categories(np.zeros(0, dtype=np.int64), [])
+    code = code.astype(np.int64)
+    is_unrec = code == _CODE["not_recorded"]
+    unit = np.where(code == _CODE["effort_unit"], u_h[hp], 0)
+    occ = np.zeros(len(hp), dtype=np.int64)
+    if occasions is not None:
+        occ = np.where(is_unrec, occasions[0][hp] + 1, 0)
+    n_occ = int(occ.max()) + 1
+    key = ((code * (len(c_key) + 1) + j) * (len(units_all) + 1) + unit) * n_occ + occ
+    ukey, kinv = np.unique(key, return_inverse=True)
+    first = np.unique(kinv.reshape(-1), return_index=True)[1]  # one record standing for each text
+    from calib.tables import _name_key
+
+    known_key = dict(zip(_name_key(pd.Series(known_species, dtype="str")), known_species))
+    texts = []
+    for r in first:
+        s, g = c_key[j[r]]
+        why = f" ({c_why[j[r]]})" if c_why[j[r]] else ""
+        name = REJECT_CODES[code[r] - 1]
+        if name == "not_recorded":
+            source, year = h["source"].iloc[hp[r]], h["year"].iloc[hp[r]]
+            src = "this source (blank)" if pd.isna(source) else f"source '{source}'"
+            t = (f"species_recorded does not list '{s}' for {src} in {year}: without that source's zeros "
+                 "this count would bias a mean upward; add the species and years to species_recorded if "
+                 "the source did record it")
+        elif name == "no_factor":
+            t = (f"no factor for '{s}' with gear '{g}' in factor set {factor_id}: fit one from calibration "
+                 f"groups where '{g}' fished beside a gear linked to the reference")
+            near = known_key.get(_name_key(pd.Series([s], dtype="str")).iloc[0])
+            if near is not None and near != s:
+                t += (f" (the factor set has '{near}', which differs only in case or spacing: map the name "
+                      "in species_names)")
+        elif name == "not_species_level":
+            t = (f"factor set {factor_id} has only length- or covariate-specific factors for '{s}' with "
+                 f"'{g}'; converting by length class or covariate level is not supported yet")
+        elif name == "no_draws":
+            t = f"factors.csv lists '{s}' with '{g}' but posterior.nc holds no draws for it: refit the factor set"
+        elif name == "draws_not_finite":
+            t = f"the factor draws for '{s}' with '{g}' are not finite numbers{why}: no conversion is possible"
+        elif name == "factor_fail":
+            t = (f"the factor for '{s}' with '{g}' has status fail{why}; fix the fit, or convert anyway with "
+                 "--allow-unconverged (the records are then marked factor_status 'fail')")
+        else:  # effort_unit
+            want, have = c_unit[j[r]], units_all[u_h[hp[r]]]
+            t = (f"effort is in '{have}' but the factor for gear '{g}' was fitted with effort in '{want}': "
+                 f"convert the effort to {want}, or give hauls in another unit a gear label of their own")
+        texts.append(t)
+    return _categories(kinv.reshape(-1), texts)
+
+
+# ----------------------------------------------------------------------------- command line
+
+
+CONVERT_DESCRIPTION = """\
+Express survey records in reference-gear units, with uncertainty. Every haul x
+species (zeros completed where the species was recorded) gets cpue = count /
+effort and its value in reference-gear units (cpue_ref_median, cpue_ref_lower,
+cpue_ref_upper): cpue times each posterior draw of the factor, summarised by the
+median and central interval. Reference-gear records pass through unchanged.
+Records outside the calibration's months or covariate ranges are converted and
+marked in domain_flag. Records that cannot be converted (no factor, factor
+status fail, effort in another unit, species not recorded by its source) go to
+rejected.csv with the reason; the counts in, converted and rejected are printed.
+
+Writes OUT/records.parquet (and records.csv up to 1,000,000 rows),
+OUT/rejected.csv, OUT/factor_draws.parquet (the draws used, once per factor),
+OUT/factors_used.csv and OUT/manifest.json."""
+
+
+def add_convert_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter) -> argparse.ArgumentParser:
+    """Add the ``convert`` subcommand to an argparse subparsers object; returns its parser."""
+    p = sub.add_parser("convert", formatter_class=formatter_class,
+                       help="express survey records in reference-gear units, with uncertainty",
+                       description=textwrap.dedent(CONVERT_DESCRIPTION))
+    p.add_argument("--factors", required=True, metavar="DIR", help="factor set directory written by `calib fit`")
+    p.add_argument("--hauls", required=True, metavar="FILE",
+                   help="hauls table (CSV or Parquet) of the records to convert")
+    p.add_argument("--catches", required=True, metavar="FILE",
+                   help="catches table: one row per haul and species caught (missing species = zero)")
+    p.add_argument("--species-recorded", metavar="FILE", default=None,
+                   help="optional table (source, species, year_from, year_to): zeros are completed only for "
+                        "species a source recorded that year")
+    p.add_argument("--species-names", metavar="FILE", default=None,
+                   help="optional table (name, accepted_name): partners' names mapped to accepted names first")
+    p.add_argument("--out", required=True, metavar="DIR", help="directory to write the converted records to")
+    p.add_argument("--draws", type=int, default=None, metavar="N",
+                   help="use a random subset of N posterior draws per factor (default: all draws)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the --draws subset")
+    p.add_argument("--interval", type=float, default=None,
+                   help="central interval level for cpue_ref_lower/upper (default: the factor set's)")
+    p.add_argument("--allow-unconverged", action="store_true",
+                   help="convert with factors whose status is fail instead of rejecting their records "
+                        "(they are marked factor_status 'fail')")
+    return p
+
+
+def run_convert_command(args) -> int:
+    """Run ``calib convert`` from parsed arguments; prints the counts; returns the exit code.
+
+    Raises InputError on bad input (the caller prints it and exits 1).
+    """
+    conversion = convert(args.factors, args.hauls, args.catches, species_recorded=args.species_recorded,
+                         species_names=args.species_names, draws=args.draws,
+                         allow_unconverged=args.allow_unconverged, interval=args.interval, seed=args.seed)
+    out = conversion.save(args.out)
+    print(conversion.summary())
+    written = ["records.parquet"] + (["records.csv"] if len(conversion.records) <= CSV_MAX_ROWS else []) + [
+        "rejected.csv", "factor_draws.parquet", "factors_used.csv", "manifest.json"]
+    print(f"\nrows in {conversion.n_in} = converted {conversion.n_converted} + rejected {conversion.n_rejected}")
+    print(f"Wrote {out}/: {', '.join(written)}")
+    return 0
