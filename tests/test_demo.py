@@ -1,0 +1,52 @@
+"""`calib demo` end to end on the bundled demo data (one shared fit, see conftest.demo_run)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+from scipy.stats import binom
+
+from calib.factors import FACTOR_COLUMNS, FactorSet
+
+
+def test_demo_writes_everything_and_says_where(demo_run):
+    out = demo_run["out"]
+    printed = demo_run["printed"]
+    for name in ("factors.csv", "checks.csv", "posterior.nc", "manifest.json"):
+        assert (out / "factors" / name).exists()
+        assert str(out / "factors") in printed
+    assert (out / "check.txt").exists()
+    assert "What the demo found" in printed
+    table = pd.read_csv(out / "factors" / "factors.csv")
+    assert list(table.columns) == FACTOR_COLUMNS
+    manifest = json.loads((out / "factors" / "manifest.json").read_text())
+    assert manifest["reference"] == "otter_trawl_new"
+    assert manifest["divergences"] is not None
+
+
+def test_demo_factors_recover_the_simulated_truth(demo_run):
+    """The demo's true factors (demo_paired_tows/truth/factors.csv) lie inside most 90% intervals.
+
+    24 factors (12 species x 2 gears) from one dataset share errors (the hierarchy and the
+    shared kappa), so this is a sanity check, not a coverage study (tests/test_model_recovery.py
+    holds that). If each interval covered independently with probability 0.9, fewer than 18 of 24
+    would happen with probability binom.cdf(17, 24, 0.9) = 0.0075.
+    """
+    fs = FactorSet.load(demo_run["out"] / "factors")
+    truth = pd.read_csv(demo_run["data_dir"] / "truth" / "factors.csv")
+    merged = fs.table.merge(truth, on=["species", "gear"], how="inner")
+    assert len(merged) == 24
+    covered = (merged["factor_lower"] <= merged["factor"]) & (merged["factor"] <= merged["factor_upper"])
+    assert binom.cdf(17, 24, 0.9) < 0.01
+    assert covered.sum() >= 18, merged.loc[~covered, ["species", "gear", "factor", "factor_lower", "factor_upper"]]
+    # Log errors are small relative to the spread of the true factors (they span a factor of 30).
+    log_err = np.log(merged["factor_median"]) - np.log(merged["factor"])
+    assert np.abs(log_err).median() < 0.25
+
+
+def test_demo_fit_converged(demo_run):
+    fs = FactorSet.load(demo_run["out"] / "factors")
+    assert fs.table["rhat"].max() < 1.05
+    assert (fs.table["status"] != "fail").sum() >= 20
