@@ -27,7 +27,7 @@ def demo_data_dir(out: Path) -> Path:
 
 def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
              progressbar: bool = True) -> dict:
-    """Run check and fit on the demo data; print findings and where the files are.
+    """Run check, fit and convert on the demo data; print findings and where the files are.
 
     Returns a dict of the output paths and the FactorSet (for tests and notebooks).
     """
@@ -56,6 +56,13 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     factors_dir = factor_set.save(out / "factors")
     print(factor_set.summary())
 
+    from calib.convert import convert
+
+    print("\n== Converting every haul to reference-gear units\n")
+    conversion = convert(factor_set, tables)
+    converted_dir = conversion.save(out / "converted")
+    print(conversion.summary())
+
     elapsed = time.perf_counter() - started
     table = factor_set.table
     print("\n== What the demo found")
@@ -66,5 +73,7 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print("\n== Files")
     print(f"  check summary:  {out / 'check.txt'}")
     print(f"  factor set:     {factors_dir}/ (factors.csv, checks.csv, posterior.nc, manifest.json)")
+    print(f"  converted:      {converted_dir}/ (records, rejected.csv, factor_draws.parquet, manifest.json)")
     print(f"\nDone in {elapsed:.0f} s.")
-    return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data}
+    return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,
+            "converted_dir": converted_dir, "conversion": conversion}

@@ -50,3 +50,17 @@ def test_demo_fit_converged(demo_run):
     fs = FactorSet.load(demo_run["out"] / "factors")
     assert fs.table["rhat"].max() < 1.05
     assert (fs.table["status"] != "fail").sum() >= 20
+
+
+def test_demo_converts_every_record_or_says_why(demo_run):
+    conv_dir = demo_run["out"] / "converted"
+    manifest = json.loads((conv_dir / "manifest.json").read_text())
+    counts = manifest["counts"]
+    records = pd.read_parquet(conv_dir / "records.parquet")
+    rejected = pd.read_csv(conv_dir / "rejected.csv")
+    assert counts["records_in"] == len(records) + len(rejected) == counts["converted"] + counts["rejected"]
+    hauls = pd.read_csv(demo_run["data_dir"] / "hauls.csv")
+    assert set(records["haul_id"]) | set(rejected["haul_id"]) == set(hauls["haul_id"])
+    assert (records["factor_id"] == manifest["factor_set_id"]).all()
+    ref = records[records["gear"] == "otter_trawl_new"]
+    assert np.allclose(ref["cpue_ref_median"], ref["cpue"])
