@@ -119,6 +119,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=20261202, help="random seed; the same seed gives the same factors")
     p.add_argument("--interval", type=float, default=0.9, help="central interval level for factor_lower/upper")
     p.add_argument("--bootstrap-reps", type=int, default=1000, help="bootstrap replicates for --method ratio")
+    p.add_argument("--status-rule", action="append", default=[], metavar="NAME=VALUE",
+                   help="change a status threshold, e.g. --status-rule fail_rhat=1.1 (repeatable). Names: "
+                        "fail_rhat, fail_ess_bulk, fail_prior_ratio, warn_rhat, warn_ess, "
+                        "warn_on_divergences, ppp_low, ppp_high; defaults in docs/methods.md")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
     from calib.convert import add_convert_parser
@@ -152,6 +156,39 @@ def _cmd_check(args) -> int:
     return 0
 
 
+def _status_rules(pairs: list[str]):
+    """StatusRules from NAME=VALUE strings; None when there are none."""
+    if not pairs:
+        return None
+    from dataclasses import fields
+
+    from calib.diagnostics import StatusRules
+
+    known = {f.name: f.type for f in fields(StatusRules)}
+    changes = {}
+    for pair in pairs:
+        name, _, value = pair.partition("=")
+        name = name.strip().replace("-", "_")
+        if name not in known or not value:
+            raise SystemExit(_usage_error(f"--status-rule {pair!r}: expected NAME=VALUE with NAME one of "
+                                          + ", ".join(known)))
+        if name == "warn_on_divergences":
+            if value.lower() not in ("true", "false", "yes", "no", "1", "0"):
+                raise SystemExit(_usage_error(f"--status-rule {pair!r}: use true or false"))
+            changes[name] = value.lower() in ("true", "yes", "1")
+        else:
+            try:
+                changes[name] = float(value)
+            except ValueError:
+                raise SystemExit(_usage_error(f"--status-rule {pair!r}: {value!r} is not a number")) from None
+    return StatusRules(**changes)
+
+
+def _usage_error(message: str) -> int:
+    print(f"calib fit: error: {message}", file=sys.stderr)
+    return 2
+
+
 def _cmd_fit(args) -> int:
     from calib.fitting import fit
 
@@ -160,7 +197,7 @@ def _cmd_fit(args) -> int:
         species_recorded=args.species_recorded, species_names=args.species_names,
         overdispersion=args.overdispersion, pooling=args.pooling, species_groups=args.species_groups,
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
-        n_boot=args.bootstrap_reps, progressbar=not args.quiet,
+        n_boot=args.bootstrap_reps, rules=_status_rules(args.status_rule), progressbar=not args.quiet,
     )
     factor_set.save(args.out)
     print(factor_set.summary())

@@ -123,7 +123,8 @@ def fit(
     rules = rules or diagnostics.StatusRules()
 
     settings = {"method": method, "draws": draws, "tune": tune, "chains": chains, "seed": seed,
-                "interval": interval}
+                "interval": interval, "sampler": "PyMC NUTS", "target_accept": 0.9,
+                "prior_draws": 2000, "posterior_predictive_draws": 200}
     spec_dict: dict = {}
     divergences = None
     if method == "hierarchical":
@@ -133,8 +134,10 @@ def fit(
         spec_dict = spec.to_dict()
         pm_model = model_mod.build_model(cells, spec)
         idata = model_mod.sample(pm_model, draws=draws, tune=tune, chains=chains, seed=seed,
-                                 progressbar=progressbar)
-        diag = diagnostics.factor_diagnostics(idata, cells, seed=seed)
+                                 progressbar=progressbar, target_accept=settings["target_accept"],
+                                 prior_draws=settings["prior_draws"])
+        diag = diagnostics.factor_diagnostics(idata, cells, ppc_draws=settings["posterior_predictive_draws"],
+                                              seed=seed)
         divergences = int(diagnostics.divergences(idata))
         summary = summarise_theta_draws(idata.posterior["theta"], interval)
     else:
