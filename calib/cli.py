@@ -129,6 +129,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_convert_parser(sub, formatter_class=_Formatter)
 
+    from calib.series import add_series_parser
+
+    add_series_parser(sub, formatter_class=_Formatter)
+
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
@@ -211,6 +215,12 @@ def _cmd_convert(args) -> int:
     return run_convert_command(args)
 
 
+def _cmd_series(args) -> int:
+    from calib.series import run_series_command
+
+    return run_series_command(args)
+
+
 def _cmd_demo(args) -> int:
     from calib.demo import run_demo
 
@@ -229,7 +239,8 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
             parser.error(f"--{name.replace('_', '-')} must be a positive whole number")
 
 
-COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "demo": _cmd_demo}
+COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
+            "demo": _cmd_demo}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -294,14 +294,53 @@ class Conversion:
         n_domain_flagged.
     manifest : factor_set_id, input hashes, counts, draws, interval, domain, timestamp, ...
     notes : things the user should know about this conversion.
+
+    The converted records are held lean (haul position, species, count and factor per
+    record, the hauls once) and ``records`` is built on first use; ``record_columns``
+    builds only the columns asked for, and ``save`` writes records.parquet in slices, so
+    millions of records never need every hauls column in memory at once.
     """
 
-    records: pd.DataFrame
     rejected: pd.DataFrame
     factor_draws: pd.DataFrame
     factors: pd.DataFrame
     manifest: dict
     notes: list[str] = field(default_factory=list)
+    store: "_RecordStore | None" = field(default=None, repr=False)
+    _records: pd.DataFrame | None = field(default=None, init=False, repr=False)
+
+    @property
+    def records(self) -> pd.DataFrame:
+        """The converted records as one DataFrame (built on first use, then kept)."""
+        if self._records is None:
+            self._records = self.store.frame()
+        return self._records
+
+    @property
+    def n_records(self) -> int:
+        return len(self.store)
+
+    def record_columns(self, columns: list[str]) -> pd.DataFrame:
+        """Only the named columns of ``records`` (cheap: the others are never built)."""
+        if self._records is not None:
+            return self._records[list(columns)]
+        return self.store.frame(columns)
+
+    def lean_records(self) -> dict:
+        """The converted records without building any record column (for code that must scale).
+
+        Keys: ``hauls`` (the survey hauls, one row each, as validated, without ``_row``);
+        per record ``haul`` (position in ``hauls``), ``species`` (index into
+        ``species_labels``), ``count`` (fish) and ``factor`` (index into ``factor_status``);
+        ``species_labels``; ``factor_status`` (status of each species x gear factor used);
+        ``haul_flag`` (domain_flag text per haul, '' inside). A record's cpue is
+        ``count / hauls.effort[haul]``; its factor_species and factor_gear are its species and
+        its haul's gear.
+        """
+        st = self.store
+        return {"hauls": st.hauls, "haul": st.haul, "species": st.species_code, "count": st.count,
+                "factor": st.factor, "species_labels": list(st.species), "factor_status": list(st.factor_status),
+                "haul_flag": st.haul_flag}
 
     @property
     def n_in(self) -> int:
@@ -365,14 +404,120 @@ class Conversion:
                                           f"the output directory holds an input ({p}) and would be replaced",
                                           "choose a new directory for --out")])
         with atomic_directory(directory) as tmp:
-            self.records.to_parquet(tmp / "records.parquet", index=False)
-            if len(self.records) <= CSV_MAX_ROWS:
+            if self.n_records <= CSV_MAX_ROWS:
+                self.records.to_parquet(tmp / "records.parquet", index=False)
                 _csv_ready(self.records).to_csv(tmp / "records.csv", index=False, float_format="%.6g")
+            else:
+                self.store.write_parquet(tmp / "records.parquet")
             _csv_ready(self.rejected).to_csv(tmp / "rejected.csv", index=False, float_format="%.6g")
             self.factor_draws.to_parquet(tmp / "factor_draws.parquet", index=False)
             self.factors.to_csv(tmp / "factors_used.csv", index=False, float_format="%.6g")
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
+
+
+PARQUET_SLICE_ROWS = 1_000_000  # records built and written per slice when saving many records
+
+
+@dataclass(eq=False)
+class _RecordStore:
+    """Converted records, lean: per record the haul's position, the species, the count and the
+    factor used; the hauls once. Any column of ``Conversion.records`` is built from these on
+    demand (hauls columns by position, cpue = count / effort, cpue_ref_* = cpue x the factor's
+    quantiles), so memory is O(records) small numbers, not O(records x hauls columns)."""
+
+    hauls: pd.DataFrame  # survey hauls as validated (no _row)
+    haul: np.ndarray  # (n,) position in hauls
+    species_code: np.ndarray  # (n,) index in species
+    species: list[str]
+    count: np.ndarray  # (n,) fish
+    factor: np.ndarray  # (n,) index of the species x gear factor in factor_quantiles / factor_status
+    factor_quantiles: np.ndarray  # (k, 3) lower, median, upper of each factor over the draws used
+    factor_status: list[str]  # (k,)
+    factor_id: str
+    haul_flag: np.ndarray  # (n_hauls,) domain flag text of each haul ('' inside)
+    _haul_columns: dict = field(default_factory=dict, repr=False)  # column -> haul-level codes or array
+
+    def __len__(self) -> int:
+        return len(self.haul)
+
+    @property
+    def columns(self) -> list[str]:
+        return list(self.hauls.columns) + ADDED_COLUMNS
+
+    def _haul_column(self, col: str):
+        """Haul-level form of a hauls column, made once: ("cat", codes, categories) for text
+        (records store it as a categorical, as ``_categorical_text`` does), else ("array", values)."""
+        if col not in self._haul_columns:
+            if col == "domain_flag":
+                codes, uniq = pd.factorize(np.asarray(self.haul_flag, dtype=object))
+                self._haul_columns[col] = ("cat", codes, pd.Index(uniq, dtype="str"))
+            else:
+                s = self.hauls[col]
+                if _is_text(s):
+                    cat = s.astype("category")
+                    self._haul_columns[col] = ("cat", cat.cat.codes.to_numpy(), cat.cat.categories)
+                else:
+                    self._haul_columns[col] = ("array", s.array)
+        return self._haul_columns[col]
+
+    def _from_hauls(self, col: str, hp: np.ndarray):
+        kind, *data = self._haul_column(col)
+        if kind == "cat":
+            codes, categories = data
+            return pd.Categorical.from_codes(codes[hp], categories=categories, validate=False)
+        return data[0].take(hp)
+
+    def frame(self, columns: list[str] | None = None, start: int = 0, stop: int | None = None) -> pd.DataFrame:
+        """Records start:stop with the given columns (default all, in the documented order)."""
+        columns = self.columns if columns is None else list(columns)
+        unknown = [c for c in columns if c not in self.columns]
+        if unknown:
+            raise KeyError(f"no record column(s) {unknown}")
+        sl = slice(start, stop)
+        hp = self.haul[sl]
+        n = len(hp)
+        j = self.factor[sl]
+        cpue = None
+        out = {}
+        for c in columns:
+            if c in self.hauls.columns:
+                out[c] = self._from_hauls(c, hp)
+            elif c in ("species", "factor_species"):
+                out[c] = pd.Categorical.from_codes(self.species_code[sl], validate=False,
+                                                   categories=pd.Index(self.species, dtype="str"))
+            elif c == "count":
+                out[c] = self.count[sl]
+            elif c == "cpue" or c.startswith("cpue_ref_"):
+                if cpue is None:
+                    cpue = self.count[sl] / self.hauls["effort"].to_numpy(dtype=float)[hp]
+                q = {"cpue": None, "cpue_ref_lower": 0, "cpue_ref_median": 1, "cpue_ref_upper": 2}[c]
+                out[c] = cpue if q is None else cpue * self.factor_quantiles[j, q]
+            elif c == "factor_id":
+                out[c] = _categories(np.zeros(n, dtype=np.int64), [self.factor_id])
+            elif c == "factor_gear":
+                out[c] = self._from_hauls("gear", hp)
+            elif c == "factor_status":
+                out[c] = _categories(j, self.factor_status)
+            elif c == "domain_flag":
+                out[c] = self._from_hauls("domain_flag", hp)
+        return pd.DataFrame(out, index=pd.RangeIndex(n), copy=False)  # no consolidating copy
+
+    def write_parquet(self, path: Path, rows: int = PARQUET_SLICE_ROWS) -> None:
+        """Write every record to one Parquet file, ``rows`` records at a time."""
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        writer = None
+        try:
+            for start in range(0, max(len(self), 1), rows):
+                table = pa.Table.from_pandas(self.frame(start=start, stop=start + rows), preserve_index=False)
+                if writer is None:
+                    writer = pq.ParquetWriter(path, table.schema)
+                writer.write_table(table)
+        finally:
+            if writer is not None:
+                writer.close()
 
 
 def _csv_ready(frame: pd.DataFrame) -> pd.DataFrame:
@@ -396,13 +541,17 @@ def _categories(codes: np.ndarray, labels: list[str]) -> pd.Categorical:
                                      categories=pd.Index(uniq, dtype="str"))
 
 
+def _is_text(s: pd.Series) -> bool:
+    return not (pd.api.types.is_numeric_dtype(s) or pd.api.types.is_datetime64_any_dtype(s)
+                or pd.api.types.is_bool_dtype(s))
+
+
 def _categorical_text(hauls: pd.DataFrame) -> pd.DataFrame:
     """Text columns of hauls as categoricals: records repeat each haul once per species, and a
     categorical stores a small code per record instead of the text (dictionary-encoded in Parquet)."""
     out = hauls.copy()
     for col in out.columns:
-        if not pd.api.types.is_numeric_dtype(out[col]) and not pd.api.types.is_datetime64_any_dtype(out[col]) \
-                and not pd.api.types.is_bool_dtype(out[col]):
+        if _is_text(out[col]):
             out[col] = out[col].astype("category")
     return out
 
@@ -485,6 +634,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
 
     # --- records: every haul x species, zeros where recorded, as positions (no string lookups)
     hp, sc, species_all, count = zero_grid(tables)
+    hp, sc = _small_int(hp, max(len(h), 1)), _small_int(sc, max(len(species_all), 1))  # halves the passes below
     n_in = len(hp)
     n_sp = max(len(species_all), 1)
     occasions = recorded_by_occasion(tables, species_all)
@@ -515,12 +665,13 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     ref_unit = fs.manifest.get("reference_effort_unit") or None
 
     # --- one decision per species x gear present in the records
-    gears_all = sorted(h["gear"].unique())
-    units_all = sorted(h["effort_unit"].unique())
-    g_h = pd.Categorical(h["gear"], categories=gears_all).codes.astype(np.int64)
-    u_h = pd.Categorical(h["effort_unit"], categories=units_all).codes.astype(np.int64)
-    ucombo, inv = np.unique(g_h[hp] * n_sp + sc, return_inverse=True)
-    inv = inv.reshape(-1)
+    g_h, gears_all = _text_codes(h["gear"])
+    u_h, units_all = _text_codes(h["effort_unit"])
+    key = g_h.astype(np.int32 if len(gears_all) * n_sp < 2**31 else np.int64)[hp]
+    key *= n_sp
+    key += sc
+    ucombo, inv = _small_unique(key, len(gears_all) * n_sp)
+    del key
     k = len(ucombo)
     c_code = np.zeros(k, dtype=np.int8)  # 0: convertible, else 1 + index in REJECT_CODES
     c_unit = np.full(k, None, dtype=object)
@@ -565,31 +716,28 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     if occasions is not None:
         occasion, recorded = occasions
         code[~recorded[occasion[hp], sc]] = _CODE["not_recorded"]
-    combo_code = c_code[inv]
-    fill = (code == 0) & (combo_code != 0)
-    code[fill] = combo_code[fill]
-    need = c_need[inv]
-    code[(code == 0) & (need >= 0) & (u_h[hp] != need)] = _CODE["effort_unit"]
+    if c_code.any():
+        combo_code = c_code[inv]
+        fill = (code == 0) & (combo_code != 0)
+        code[fill] = combo_code[fill]
+        del combo_code, fill
+    # effort units: a record-level check only when some gear has hauls in a unit its factor was
+    # not fitted with (decided on the few gear x unit pairs present)
+    n_units = max(len(units_all), 1)
+    present = np.flatnonzero(np.bincount(g_h.astype(np.int64) * n_units + u_h, minlength=len(gears_all) * n_units))
+    pairs = {(int(x // n_units), int(x % n_units)) for x in present}
+    combo_gear = ucombo // n_sp
+    if any(c_need[j] >= 0 and any(g == combo_gear[j] and u != c_need[j] for g, u in pairs) for j in range(k)):
+        need = c_need[inv]
+        code[(code == 0) & (need >= 0) & (u_h[hp] != need)] = _CODE["effort_unit"]
+        del need
     ok = code == 0
-    del combo_code, fill, need
+    all_ok = bool(ok.all())
 
-    # --- converted records
-    hc = _categorical_text(h)
-    hp_ok, j_ok = hp[ok], inv[ok]
-    rec = hc.take(hp_ok).reset_index(drop=True)
-    rec["species"] = _categories(sc[ok], species_all)
-    rec["count"] = count[ok]
-    cpue = count[ok] / effort[hp_ok]
-    rec["cpue"] = cpue
-    q = c_q[j_ok]
-    rec["cpue_ref_median"] = cpue * q[:, 1]
-    rec["cpue_ref_lower"] = cpue * q[:, 0]
-    rec["cpue_ref_upper"] = cpue * q[:, 2]
-    del q
-    rec["factor_id"] = _categories(np.zeros(len(rec), dtype=np.int64), [fs.id])
-    rec["factor_gear"] = rec["gear"].copy()
-    rec["factor_species"] = rec["species"].copy()
-    rec["factor_status"] = _categories(j_ok, [str(x) for x in c_status])
+    # --- converted records (kept lean; columns are built on demand, see _RecordStore)
+    hp_ok, j_ok = (hp, inv) if all_ok else (hp[ok], inv[ok])
+    counts_used = np.bincount(j_ok, minlength=k)
+    used = np.flatnonzero(counts_used)
 
     domain = fs.manifest.get("domain")
     notes: list[str] = []
@@ -609,22 +757,25 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     else:
         flag_h = np.full(len(h), "", dtype=object)
     flagged_h = flag_h != ""
-    converted_gears = {c_key[j][1] for j in np.unique(j_ok)} - {reference}
+    converted_gears = {c_key[j][1] for j in used} - {reference}
     if domain:
         for g in sorted(converted_gears - set(domain.get("by_gear", {}))):
             notes.append(f"the calibration domain has no entry for gear '{g}': its records are not checked "
                          "against it (domain_flag blank)")
-    no_unit = sorted({c_key[j][1] for j in np.unique(j_ok) if c_unit[j] is None})
+    no_unit = sorted({c_key[j][1] for j in used if c_unit[j] is None})
     if no_unit:
         notes.append(f"the factor set gives no effort unit for {', '.join(repr(g) for g in no_unit)}: "
                      "effort units of those records were not checked")
-    rec["domain_flag"] = _categories(hp_ok, [str(x) for x in flag_h])
     flagged = flagged_h[hp_ok]
+    store = _RecordStore(hauls=h, haul=hp_ok, species_code=sc if all_ok else sc[ok],
+                         species=list(species_all), count=count if all_ok else count[ok], factor=_small_int(j_ok, k),
+                         factor_quantiles=c_q, factor_status=[str(x) for x in c_status], factor_id=fs.id,
+                         haul_flag=flag_h)
 
     # --- rejected records, each with its reason
     bad = ~ok
     hp_bad = hp[bad]
-    rej = hc.take(hp_bad).reset_index(drop=True)
+    rej = _categorical_text(h.take(hp_bad).reset_index(drop=True))
     rej["species"] = _categories(sc[bad], species_all)
     rej["count"] = count[bad]
     rej["cpue"] = count[bad] / effort[hp_bad]
@@ -634,7 +785,6 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
 
     # --- factors used and their draws
     rows, draw_frames = [], []
-    counts_used = np.bincount(j_ok, minlength=k)
     flagged_used = np.bincount(j_ok[flagged], minlength=k)
     for j in np.flatnonzero(counts_used):
         s, g = c_key[j]
@@ -653,7 +803,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
                                        for c in DRAW_COLUMNS}).astype({"species": "str", "gear": "str"}))
     factor_draws = factor_draws[DRAW_COLUMNS]
 
-    n_conv, n_rej = len(rec), len(rej)
+    n_conv, n_rej = len(store), len(rej)
     if n_conv + n_rej != n_in:  # pragma: no cover - an internal error, never expected
         raise AssertionError(f"records in {n_in} != converted {n_conv} + rejected {n_rej}")
     by_reason = np.bincount(code[bad].astype(np.int64), minlength=len(REJECT_CODES) + 1)
@@ -686,8 +836,36 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     manifest["conversion_id"] = "cv-" + hashlib.sha256(
         json.dumps(manifest, sort_keys=True, default=str).encode()).hexdigest()[:16]
     manifest["timestamp"] = utc_timestamp()
-    return Conversion(records=rec, rejected=rej, factor_draws=factor_draws, factors=factors_used,
-                      manifest=manifest, notes=notes)
+    return Conversion(rejected=rej, factor_draws=factor_draws, factors=factors_used, manifest=manifest,
+                      notes=notes, store=store)
+
+
+def _text_codes(values: pd.Series) -> tuple[np.ndarray, list[str]]:
+    """Codes (int32) of a text column into its sorted distinct values (hash-based factorize:
+    fast on Arrow-backed text), for columns without missing values."""
+    codes, uniq = pd.factorize(values, use_na_sentinel=False)
+    labels = [str(u) for u in uniq]
+    order = sorted(range(len(labels)), key=lambda i: labels[i])
+    rank = np.empty(len(labels), dtype=np.int32)
+    rank[order] = np.arange(len(labels), dtype=np.int32)
+    return rank[codes], [labels[i] for i in order]
+
+
+def _small_unique(keys: np.ndarray, n_keys: int) -> tuple[np.ndarray, np.ndarray]:
+    """np.unique(keys, return_inverse=True) for integer keys in [0, n_keys): a lookup table
+    instead of a sort, O(len(keys) + n_keys)."""
+    present = np.bincount(keys, minlength=n_keys) > 0
+    uniq = np.flatnonzero(present)
+    lut = np.cumsum(present) - 1
+    return uniq, lut[keys]
+
+
+def _small_int(values: np.ndarray, bound: int) -> np.ndarray:
+    """Integer positions in [0, bound) in the smallest dtype that holds them."""
+    for dtype in (np.int8, np.int16, np.int32):
+        if bound <= np.iinfo(dtype).max:
+            return values.astype(dtype)
+    return values.astype(np.int64)
 
 
 def _reason_texts(h: pd.DataFrame, hp: np.ndarray, code: np.ndarray, j: np.ndarray, c_key, c_unit, c_why,
@@ -804,7 +982,7 @@ def run_convert_command(args) -> int:
                          allow_unconverged=args.allow_unconverged, interval=args.interval, seed=args.seed)
     out = conversion.save(args.out)
     print(conversion.summary())
-    written = ["records.parquet"] + (["records.csv"] if len(conversion.records) <= CSV_MAX_ROWS else []) + [
+    written = ["records.parquet"] + (["records.csv"] if conversion.n_records <= CSV_MAX_ROWS else []) + [
         "rejected.csv", "factor_draws.parquet", "factors_used.csv", "manifest.json"]
     print(f"\nrows in {conversion.n_in} = converted {conversion.n_converted} + rejected {conversion.n_rejected}")
     print(f"Wrote {out}/: {', '.join(written)}")

@@ -27,7 +27,7 @@ def demo_data_dir(out: Path) -> Path:
 
 def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
              progressbar: bool = True) -> dict:
-    """Run check, fit and convert on the demo data; print findings and where the files are.
+    """Run check, fit, convert and series on the demo data; print findings and where the files are.
 
     Returns a dict of the output paths and the FactorSet (for tests and notebooks).
     """
@@ -63,6 +63,13 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     converted_dir = conversion.save(out / "converted")
     print(conversion.summary())
 
+    from calib.series import series
+
+    print("\n== Building the harmonized abundance series\n")
+    series_result = series(conversion, seed=seed)
+    series_dir = series_result.save(out / "series")
+    print(series_result.summary())
+
     elapsed = time.perf_counter() - started
     table = factor_set.table
     print("\n== What the demo found")
@@ -74,6 +81,8 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(f"  check summary:  {out / 'check.txt'}")
     print(f"  factor set:     {factors_dir}/ (factors.csv, checks.csv, posterior.nc, manifest.json)")
     print(f"  converted:      {converted_dir}/ (records, rejected.csv, factor_draws.parquet, manifest.json)")
+    print(f"  series:         {series_dir}/ (series.csv, series_draws.parquet, manifest.json)")
     print(f"\nDone in {elapsed:.0f} s.")
     return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,
-            "converted_dir": converted_dir, "conversion": conversion}
+            "converted_dir": converted_dir, "conversion": conversion,
+            "series_dir": series_dir, "series": series_result}

@@ -958,6 +958,21 @@ def recorded_mask(tables: Tables, haul_id, species) -> np.ndarray:
     return recorded[occasion[pos], pd.Index(names).get_indexer(species)]
 
 
+def _positions(values, labels) -> np.ndarray:
+    """Position (int64) of each value in the unique ``labels``; -1 where absent.
+
+    Arrow's hash lookup on the text as stored (pandas' Arrow-backed strings), without a
+    Python object per value: several times faster and far smaller than ``Index.get_indexer``
+    on millions of rows.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    v = pa.array(pd.Series(values, dtype="str"), type=pa.large_string())
+    s = pa.array(pd.Series(labels, dtype="str"), type=pa.large_string())
+    return pc.index_in(v, value_set=s).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+
+
 def zero_grid(tables: Tables, recorded: pd.DataFrame | None = None):
     """Positions behind :func:`complete_zeros`, for code that must scale to millions of records.
 
@@ -970,8 +985,7 @@ def zero_grid(tables: Tables, recorded: pd.DataFrame | None = None):
     species = sorted(catches["species"].unique())
     n_h, n_s = len(hauls), len(species)
     haul_index = pd.Index(hauls["haul_id"])
-    flat = haul_index.get_indexer(catches["haul_id"]).astype(np.int64) * n_s + pd.Index(species).get_indexer(
-        catches["species"])
+    flat = _positions(catches["haul_id"], hauls["haul_id"]) * n_s + _positions(catches["species"], species)
     counts = np.full(n_h * n_s, np.nan)
     counts[flat] = catches["count"].to_numpy(dtype=float)
     if recorded is not None:

@@ -64,3 +64,12 @@ def test_demo_converts_every_record_or_says_why(demo_run):
     assert (records["factor_id"] == manifest["factor_set_id"]).all()
     ref = records[records["gear"] == "otter_trawl_new"]
     assert np.allclose(ref["cpue_ref_median"], ref["cpue"])
+
+
+def test_demo_builds_the_harmonized_series(demo_run):
+    table = pd.read_csv(demo_run["out"] / "series" / "series.csv")
+    assert {"species", "year", "stratum", "estimate", "lower", "upper", "raw_estimate"} <= set(table.columns)
+    combined = table[table["stratum"] == "all"]
+    assert combined["year"].between(2004, 2025).all()
+    assert (combined["lower"] <= combined["estimate"]).all() and (combined["estimate"] <= combined["upper"]).all()
+    assert str(demo_run["out"] / "series") in demo_run["printed"]
