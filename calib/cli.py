@@ -133,6 +133,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_series_parser(sub, formatter_class=_Formatter)
 
+    from calib.trend import add_trend_parser
+
+    add_trend_parser(sub, formatter_class=_Formatter)
+
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
@@ -221,6 +225,12 @@ def _cmd_series(args) -> int:
     return run_series_command(args)
 
 
+def _cmd_trend(args) -> int:
+    from calib.trend import run_trend_command
+
+    return run_trend_command(args)
+
+
 def _cmd_demo(args) -> int:
     from calib.demo import run_demo
 
@@ -240,7 +250,7 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
 
 
 COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
-            "demo": _cmd_demo}
+            "trend": _cmd_trend, "demo": _cmd_demo}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -27,7 +27,7 @@ def demo_data_dir(out: Path) -> Path:
 
 def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
              progressbar: bool = True) -> dict:
-    """Run check, fit, convert and series on the demo data; print findings and where the files are.
+    """Run check, fit, convert, series and trend on the demo data; print findings and where the files are.
 
     Returns a dict of the output paths and the FactorSet (for tests and notebooks).
     """
@@ -70,6 +70,13 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     series_dir = series_result.save(out / "series")
     print(series_result.summary())
 
+    from calib.trend import trend
+
+    print("\n== How much of each apparent trend is the change of gears?\n")
+    trend_result = trend(conversion, seed=seed)
+    trend_dir = trend_result.save(out / "trend")
+    print(trend_result.summary())
+
     elapsed = time.perf_counter() - started
     table = factor_set.table
     print("\n== What the demo found")
@@ -82,7 +89,9 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(f"  factor set:     {factors_dir}/ (factors.csv, checks.csv, posterior.nc, manifest.json)")
     print(f"  converted:      {converted_dir}/ (records, rejected.csv, factor_draws.parquet, manifest.json)")
     print(f"  series:         {series_dir}/ (series.csv, series_draws.parquet, manifest.json)")
+    print(f"  trend:          {trend_dir}/ (trend.csv, summary.md, trend_draws.parquet, manifest.json)")
     print(f"\nDone in {elapsed:.0f} s.")
     return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,
             "converted_dir": converted_dir, "conversion": conversion,
-            "series_dir": series_dir, "series": series_result}
+            "series_dir": series_dir, "series": series_result,
+            "trend_dir": trend_dir, "trend": trend_result}

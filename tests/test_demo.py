@@ -73,3 +73,13 @@ def test_demo_builds_the_harmonized_series(demo_run):
     assert combined["year"].between(2004, 2025).all()
     assert (combined["lower"] <= combined["estimate"]).all() and (combined["estimate"] <= combined["upper"]).all()
     assert str(demo_run["out"] / "series") in demo_run["printed"]
+
+
+def test_demo_attributes_trends(demo_run):
+    """The demo's true trends (demo_paired_tows/README.md): southern flounder declines
+    (-5%/year, about -65% over 2004-2025), pink shrimp rises (+3%/year); the rest are flat."""
+    table = pd.read_csv(demo_run["out"] / "trend" / "trend.csv")
+    assert set(table["species"]) >= {"southern flounder", "pink shrimp", "pinfish"}
+    assert (demo_run["out"] / "trend" / "summary.md").read_text().strip()
+    flounder = table.set_index("species").loc["southern flounder"]
+    assert flounder["harmonized_change_upper"] < 0
