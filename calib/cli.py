@@ -37,7 +37,8 @@ class _Formatter(argparse.RawDescriptionHelpFormatter):
 
     def _get_help_string(self, action):
         text = action.help or ""
-        if action.default not in (None, False, argparse.SUPPRESS) and action.option_strings:
+        if (action.default not in (None, False, argparse.SUPPRESS) and action.option_strings
+                and "default" not in text):
             text += " (default: %(default)s)"
         return text
 

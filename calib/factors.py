@@ -224,3 +224,30 @@ def load_factors(directory: str | Path) -> FactorSet:
 
 def utc_timestamp() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def factor_set_from_draws(theta, *, reference: str, factor_set_id: str, effort_unit: str = "m2",
+                          status: str = "ok", method: str = "synthetic", interval: float = 0.9) -> FactorSet:
+    """A FactorSet from known theta draws (for simulations, tests and factors fitted elsewhere).
+
+    ``theta``: xarray DataArray (chain, draw, gear, species) of log(q_gear / q_ref) with the
+    reference gear's row 0; factor = exp(-theta). Every non-reference gear x species gets one
+    factors.csv row with the given ``status``; summaries are left blank (they are not needed to
+    convert, which reads the draws). The calibration domain is empty, so convert flags nothing.
+    """
+    import arviz as az
+
+    rows = []
+    for gear in theta.coords["gear"].values:
+        if gear == reference:
+            continue
+        for species in theta.coords["species"].values:
+            row = {c: np.nan for c in FACTOR_COLUMNS}
+            row.update(species=species, gear=gear, reference=reference, effort_unit=effort_unit,
+                       status=status, reason="", interval=interval)
+            rows.append(row)
+    manifest = {"factor_set_id": factor_set_id, "reference": reference, "reference_effort_unit": effort_unit,
+                "method": method, "settings": {"interval": interval}, "inputs": {},
+                "domain": {"numeric": [], "categorical": [], "skipped": {}, "by_gear": {}}}
+    return FactorSet(table=pd.DataFrame(rows, columns=FACTOR_COLUMNS), checks=pd.DataFrame(),
+                     idata=az.InferenceData(posterior=theta.to_dataset(name="theta")), manifest=manifest)

@@ -1193,18 +1193,22 @@ def add_series_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap resampling and of --draws")
     p.add_argument("--interval", type=float, default=None,
                    help="central interval level for lower/upper (default: the conversion's)")
-    p.add_argument("--ignore-strata", action="store_true",
-                   help="treat each year as one unstratified sample (one plain mean over its hauls)")
-    p.add_argument("--incomplete", choices=INCOMPLETE, default="flag",
-                   help="years missing a stratum: 'flag' gives the mean over the strata sampled, marked "
-                        "incomplete; 'blank' leaves the combined value empty")
+    add_resampling_options(p, incomplete_help="years missing a stratum: 'flag' gives the mean over the strata "
+                                              "sampled, marked incomplete; 'blank' leaves the combined value empty")
     p.add_argument("--uncertainty", choices=UNCERTAINTY, default="both",
                    help="'both' carries sampling and conversion error; 'sampling' or 'conversion' alone are for "
                         "comparison only")
+    return p
+
+
+def add_resampling_options(p, *, incomplete_help: str) -> None:
+    """Options of the shared series estimator, for every command that builds series draws."""
+    p.add_argument("--ignore-strata", action="store_true",
+                   help="treat each year as one unstratified sample (one plain mean over its hauls)")
+    p.add_argument("--incomplete", choices=INCOMPLETE, default="flag", help=incomplete_help)
     p.add_argument("--exact-max-hauls", type=_positive_int, default=EXACT_MAX_HAULS, metavar="N",
                    help="species x stratum x year units with more hauls with a catch than this are resampled by a "
                         "moment-matched approximation instead of exactly")
-    return p
 
 
 def run_series_command(args) -> int:

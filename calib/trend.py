@@ -67,6 +67,7 @@ import pandas as pd
 
 from calib.errors import InputError, Problem
 from calib.series import (
+    add_resampling_options,
     EXACT_MAX_HAULS,
     INCOMPLETE,
     _positive_int,
@@ -436,14 +437,8 @@ def add_trend_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter) 
                    help="central interval level (default: the conversion's)")
     p.add_argument("--change-threshold", type=float, default=CHANGE_THRESHOLD, metavar="FRACTION",
                    help="raw change over the period below which no artifact share is given (default 0.1 = 10%%)")
-    p.add_argument("--ignore-strata", action="store_true",
-                   help="treat each year as one unstratified sample (one plain mean over its hauls)")
-    p.add_argument("--incomplete", choices=INCOMPLETE, default="flag",
-                   help="years missing a stratum: 'flag' uses the mean over the strata sampled; 'blank' leaves "
-                        "the year out of the trend")
-    p.add_argument("--exact-max-hauls", type=_positive_int, default=EXACT_MAX_HAULS, metavar="N",
-                   help="units with more hauls with a catch than this are resampled by the moment-matched "
-                        "approximation (see calib series --help)")
+    add_resampling_options(p, incomplete_help="years missing a stratum: 'flag' uses the mean over the strata "
+                                              "sampled; 'blank' leaves the year out of the trend")
     return p
 
 

@@ -11,7 +11,6 @@ import argparse
 import json
 from pathlib import Path
 
-import arviz as az
 import numpy as np
 import pandas as pd
 import pytest
@@ -20,7 +19,7 @@ from scipy import stats
 
 from calib.convert import convert
 from calib.errors import InputError
-from calib.factors import FACTOR_COLUMNS, FactorSet
+from calib.factors import FactorSet, factor_set_from_draws
 from calib.series import (
     ALL,
     DRAW_COLUMNS,
@@ -49,16 +48,7 @@ def factor_set(species, theta, sd=0.2, n_draw=400, seed=5, center=None) -> Facto
     post = xr.DataArray(th, dims=("chain", "draw", "gear", "species"),
                         coords={"chain": [0], "draw": np.arange(n_draw), "gear": [REF, OTHER], "species": species},
                         name="theta")
-    rows = []
-    for s in species:
-        r = {c: np.nan for c in FACTOR_COLUMNS}
-        r.update(species=s, gear=OTHER, reference=REF, effort_unit="m2", status="ok", reason="")
-        rows.append(r)
-    manifest = {"factor_set_id": "fs-series-test", "reference": REF, "reference_effort_unit": "m2",
-                "method": "synthetic", "settings": {"interval": 0.9}, "inputs": {},
-                "domain": {"numeric": [], "categorical": [], "skipped": {}, "by_gear": {}}}
-    return FactorSet(table=pd.DataFrame(rows)[FACTOR_COLUMNS], checks=pd.DataFrame(),
-                     idata=az.InferenceData(posterior=post.to_dataset(name="theta")), manifest=manifest)
+    return factor_set_from_draws(post, reference=REF, factor_set_id="fs-series-test")
 
 
 def write_tables(tmp_path: Path, hauls: pd.DataFrame, catches: pd.DataFrame) -> tuple[Path, Path]:

@@ -9,7 +9,6 @@ from __future__ import annotations
 import argparse
 import json
 
-import arviz as az
 import numpy as np
 import pandas as pd
 import pytest
@@ -17,7 +16,7 @@ import statsmodels.api as sm
 import xarray as xr
 
 from calib.convert import convert
-from calib.factors import FACTOR_COLUMNS, FactorSet
+from calib.factors import FactorSet, factor_set_from_draws
 from calib.trend import DRAW_COLUMNS, TREND_COLUMNS, add_trend_parser, loglinear_slope, run_trend_command, trend
 
 REF, OTHER = "trawl_a", "trawl_b"
@@ -35,16 +34,7 @@ def factor_set(species, theta, sd=0.1, n_draw=400, seed=5) -> FactorSet:
     post = xr.DataArray(th, dims=("chain", "draw", "gear", "species"),
                         coords={"chain": [0], "draw": np.arange(n_draw), "gear": [REF, OTHER], "species": species},
                         name="theta")
-    rows = []
-    for s in species:
-        r = {c: np.nan for c in FACTOR_COLUMNS}
-        r.update(species=s, gear=OTHER, reference=REF, effort_unit="m2", status="ok", reason="")
-        rows.append(r)
-    manifest = {"factor_set_id": "fs-trend-test", "reference": REF, "reference_effort_unit": "m2",
-                "method": "synthetic", "settings": {"interval": 0.9}, "inputs": {},
-                "domain": {"numeric": [], "categorical": [], "skipped": {}, "by_gear": {}}}
-    return FactorSet(table=pd.DataFrame(rows)[FACTOR_COLUMNS], checks=pd.DataFrame(),
-                     idata=az.InferenceData(posterior=post.to_dataset(name="theta")), manifest=manifest)
+    return factor_set_from_draws(post, reference=REF, factor_set_id="fs-trend-test")
 
 
 def survey(tmp_path, gears_of_year, density_of_year, seed, year_sd=0.15, kappa=3.0):
