@@ -89,32 +89,6 @@ class Cells:
             }
         )
 
-    def subset_species(self, names: list[str]) -> "Cells":
-        """Cells of the named species only (species order as given)."""
-        index = {s: i for i, s in enumerate(self.species)}
-        keep_idx = np.array([index[s] for s in names])
-        remap = -np.ones(self.n_species, dtype=int)
-        remap[keep_idx] = np.arange(len(names))
-        mask = remap[self.cell_species] >= 0
-        return _replace(
-            self,
-            species=list(names),
-            counts=self.counts[mask],
-            present=self.present[mask],
-            weight=self.weight[mask],
-            effort=self.effort[mask],
-            cell_group=self.cell_group[mask],
-            cell_species=remap[self.cell_species[mask]],
-            cell_combo=self.cell_combo[mask],
-            species_pool=self.species_pool[keep_idx],
-        )
-
-
-def _replace(cells: Cells, **changes) -> Cells:
-    from dataclasses import replace
-
-    return replace(cells, **changes)
-
 
 def calibration_hauls(hauls: pd.DataFrame) -> pd.DataFrame:
     """Hauls that belong to a calibration group (non-blank pair_id)."""

@@ -394,16 +394,9 @@ class Conversion:
         from calib.outputs import atomic_directory
 
         directory = Path(directory)
-        target = directory.resolve()
-        protected = [p for p in [self.manifest.get("factor_set_dir")]
-                     + [v["path"] for v in self.manifest["inputs"].values()] if p]
-        for p in protected:
-            pr = Path(p).resolve()
-            if pr == target or target in pr.parents:
-                raise InputError([Problem(str(directory), None, None,
-                                          f"the output directory holds an input ({p}) and would be replaced",
-                                          "choose a new directory for --out")])
-        with atomic_directory(directory) as tmp:
+        protect = [(p, "an input") for p in [self.manifest.get("factor_set_dir")]
+                   + [v["path"] for v in self.manifest["inputs"].values()]]
+        with atomic_directory(directory, protect=protect) as tmp:
             if self.n_records <= CSV_MAX_ROWS:
                 self.records.to_parquet(tmp / "records.parquet", index=False)
                 _csv_ready(self.records).to_csv(tmp / "records.csv", index=False, float_format="%.6g")

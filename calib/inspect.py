@@ -339,7 +339,6 @@ def _intake_report(tables: Tables, counts: pd.DataFrame) -> tuple[list[str], lis
     if sr is None:
         notes.append(NO_SPECIES_RECORDED_NOTE)
     else:
-        rf = tables.files["species_recorded"]
         listed = set(sr["source"])
         not_filled = len(hauls) * n_species - len(counts)
         notes.append(f"species_recorded: recording lists for {len(listed & set(hauls['source'].dropna()))} "

@@ -9,14 +9,32 @@ import tempfile
 from pathlib import Path
 
 
+def _refuse_to_replace(target: Path, protect) -> None:
+    """InputError when ``target`` is, or contains, one of the protected paths."""
+    resolved = target.resolve()
+    for path, label in protect:
+        if not path:
+            continue
+        guarded = Path(path).resolve()
+        if guarded == resolved or resolved in guarded.parents:
+            from calib.errors import InputError, Problem
+
+            raise InputError([Problem(str(target), None, None,
+                                      f"the output directory holds {label} ({path}) and would be replaced",
+                                      "choose a new directory for --out", False)])
+
+
 @contextlib.contextmanager
-def atomic_directory(target: str | os.PathLike):
+def atomic_directory(target: str | os.PathLike, protect=()):
     """Yield a temporary directory beside ``target``; on success it replaces ``target``.
 
     On any exception the temporary directory is removed and ``target`` is untouched.
-    Files the caller writes must go inside the yielded path.
+    Files the caller writes must go inside the yielded path. ``protect``: (path, label)
+    pairs of inputs that must survive; a ``target`` that is or holds one of them is refused
+    (InputError) before anything is written.
     """
     target = Path(target)
+    _refuse_to_replace(target, protect)
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=target.parent))
     os.chmod(tmp, 0o755)  # mkdtemp makes the folder private; outputs are ordinary folders

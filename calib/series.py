@@ -1021,14 +1021,8 @@ class SeriesResult:
         from calib.outputs import atomic_directory
 
         directory = Path(directory)
-        src = self.manifest.get("converted_dir")
-        if src:
-            target, sp = directory.resolve(), Path(src).resolve()
-            if target == sp or target in sp.parents:
-                raise InputError([Problem(str(directory), None, None,
-                                          f"the output directory holds the converted records ({src}) and would "
-                                          "be replaced", "choose a new directory for --out", False)])
-        with atomic_directory(directory) as tmp:
+        protect = [(self.manifest.get("converted_dir"), "the converted records")]
+        with atomic_directory(directory, protect=protect) as tmp:
             self.table.to_csv(tmp / "series.csv", index=False, float_format="%.6g")
             self.draws_frame().to_parquet(tmp / "series_draws.parquet", index=False)
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")

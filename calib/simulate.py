@@ -196,6 +196,18 @@ def _length_grid(spec: LengthSpec, gears: Sequence[str], species: Sequence[str])
     return _LengthGrid(lower, share, delta, bin_mm)
 
 
+
+def _in_haul_order(length_table: pd.DataFrame, haul_ids, species) -> pd.DataFrame:
+    """Lengths rows ordered by haul, then species, then length (stable, as the hauls were made)."""
+    order = {h: k for k, h in enumerate(haul_ids)}
+    sp_order = {s: k for k, s in enumerate(species)}
+    return (
+        length_table.assign(_h=length_table["haul_id"].map(order), _s=length_table["species"].map(sp_order))
+        .sort_values(["_h", "_s", "length_mm"], kind="stable")
+        .drop(columns=["_h", "_s"])
+        .reset_index(drop=True)
+    )
+
 def _measured_lengths(
     rng: np.random.Generator,
     class_counts: np.ndarray,
@@ -540,14 +552,7 @@ def simulate_calibration(
         length_table = pd.concat(length_frames, ignore_index=True) if length_frames else pd.DataFrame(
             columns=["haul_id", "species", "length_mm", "n"]
         )
-        order = {h: k for k, h in enumerate(haul_ids)}
-        sp_order = {s: k for k, s in enumerate(species)}
-        length_table = (
-            length_table.assign(_h=length_table["haul_id"].map(order), _s=length_table["species"].map(sp_order))
-            .sort_values(["_h", "_s", "length_mm"], kind="stable")
-            .drop(columns=["_h", "_s"])
-            .reset_index(drop=True)
-        )
+        length_table = _in_haul_order(length_table, haul_ids, species)
         rows = []
         for s in range(n_s):
             for g in range(n_g):
@@ -697,14 +702,7 @@ def simulate_survey(
             measured = rng.multinomial(m, pi[gear_idx[rows]])
             frames.append(_measured_lengths(rng, measured, grid.lower[s], grid.bin_mm, haul_ids[rows], species[s]))
         length_table = pd.concat(frames, ignore_index=True)
-        order = {h: k for k, h in enumerate(haul_ids)}
-        sp_order = {s: k for k, s in enumerate(species)}
-        length_table = (
-            length_table.assign(_h=length_table["haul_id"].map(order), _s=length_table["species"].map(sp_order))
-            .sort_values(["_h", "_s", "length_mm"], kind="stable")
-            .drop(columns=["_h", "_s"])
-            .reset_index(drop=True)
-        )
+        length_table = _in_haul_order(length_table, haul_ids, species)
     k_st, k_yr, k_sp = np.meshgrid(np.arange(len(strata)), np.arange(len(years)), np.arange(n_s), indexing="ij")
     true_density = pd.DataFrame(
         {

@@ -69,7 +69,6 @@ from calib.errors import InputError, Problem
 from calib.series import (
     add_resampling_options,
     EXACT_MAX_HAULS,
-    INCOMPLETE,
     _positive_int,
     _read_converted,
     row_quantiles,
@@ -210,14 +209,8 @@ class TrendResult:
         from calib.outputs import atomic_directory
 
         directory = Path(directory)
-        src = self.manifest.get("converted_dir")
-        if src:
-            target, sp = directory.resolve(), Path(src).resolve()
-            if target == sp or target in sp.parents:
-                raise InputError([Problem(str(directory), None, None,
-                                          f"the output directory holds the converted records ({src}) and would "
-                                          "be replaced", "choose a new directory for --out", False)])
-        with atomic_directory(directory) as tmp:
+        protect = [(self.manifest.get("converted_dir"), "the converted records")]
+        with atomic_directory(directory, protect=protect) as tmp:
             self.table.to_csv(tmp / "trend.csv", index=False, float_format="%.6g")
             (tmp / "summary.md").write_text("# Trend attribution\n\n" + self.summary() + "\n")
             self.draws.to_parquet(tmp / "trend_draws.parquet", index=False)
