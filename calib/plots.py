@@ -195,8 +195,8 @@ def plot_artifact_bars(trend_table):
                Patch(color=ARTIFACT, label="method artifact (change of gears)"),
                Line2D([], [], marker="D", color=RAW, markeredgecolor=INK, linestyle="none",
                       label="raw merged change")]
-    ax.legend(handles=handles, fontsize=7, frameon=False, loc="lower right",
-              title=f"whiskers: {level} intervals", title_fontsize=6)
+    ax.legend(handles=handles, fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.16),
+              ncols=3, title=f"whiskers: {level} intervals", title_fontsize=6)
     ax.set_title("How much of each change is the change of methods?", fontsize=10)
     return plt_fig
 
