@@ -138,6 +138,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_trend_parser(sub, formatter_class=_Formatter)
 
+    from calib.plan import add_plan_parser
+
+    add_plan_parser(sub, formatter_class=_Formatter)
+
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
@@ -232,6 +236,12 @@ def _cmd_trend(args) -> int:
     return run_trend_command(args)
 
 
+def _cmd_plan(args) -> int:
+    from calib.plan import run_plan_command
+
+    return run_plan_command(args)
+
+
 def _cmd_demo(args) -> int:
     from calib.demo import run_demo
 
@@ -251,7 +261,7 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
 
 
 COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
-            "trend": _cmd_trend, "demo": _cmd_demo}
+            "trend": _cmd_trend, "plan": _cmd_plan, "demo": _cmd_demo}
 
 
 def main(argv: list[str] | None = None) -> int:
