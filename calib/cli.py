@@ -146,9 +146,10 @@ def build_parser() -> argparse.ArgumentParser:
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
         description=textwrap.dedent("""\
-            Run check and fit on the bundled demo data (an invented estuary with three
-            partner programs, a legacy and a new otter trawl, and a beach seine) and print
-            what was found and where the files are. Takes a few minutes on 2 cores."""),
+            Run check, fit, convert, series, trend and a small study plan on the bundled
+            demo data (an invented estuary with three partner programs, a legacy and a new
+            otter trawl, and a beach seine) and print what was found and where the files
+            are. Takes a few minutes on 2 cores."""),
     )
     p.add_argument("--out", required=True, metavar="DIR", help="directory for all demo outputs")
     p.add_argument("--draws", type=int, default=1000, help="posterior draws per chain")

@@ -282,12 +282,14 @@ def expected_catch_from_records(hauls, catches, reference: str, species_names=No
 
 
 def expected_catch_from_factors(directory) -> pd.DataFrame:
-    """Expected catches implied by a fitted factor set (``calib fit`` output).
+    """Expected catches per deployment implied by a fitted factor set (``calib fit`` output).
 
-    For each species x gear: catch_gear = n_caught / n_groups (mean catch of the gear per
-    calibration group) and catch_reference = catch_gear x factor_median (the factor converts the
-    gear's catch to the reference's; equal effort per deployment assumed). Rows for length
-    classes or covariate levels are left out.
+    Groups where a gear fished with the reference: N_g = the largest n_groups of the gear over the
+    species (exact when some species was caught in every group; cells with a zero total are not
+    stored). catch_gear = n_caught / N_g. catch_reference = the reference's catch in the same groups
+    / N_g, read from the stored cell counts (posterior.nc constant_data) when the fit kept them,
+    else catch_gear x factor_median (equal effort per deployment assumed). Rows for length classes
+    or covariate levels are left out.
     """
     from calib.factors import load_factors
 
@@ -296,19 +298,52 @@ def expected_catch_from_factors(directory) -> pd.DataFrame:
     for col in ("length_mm", "level"):
         if col in t:
             t = t[t[col].isna() | (t[col].astype(str) == "")]
-    usable = (t["n_groups"] > 0) & np.isfinite(t["factor_median"]) & np.isfinite(t["n_caught"])
-    t = t[usable]
+    t = t[(t["n_groups"] > 0) & np.isfinite(t["factor_median"]) & np.isfinite(t["n_caught"])]
     if t.empty:
         raise InputError([_problem(Path(directory) / "factors.csv", None, "factor_median",
                                    "no factor with a median and catches to plan from",
                                    "give expected catches with --catch-table or survey records instead")])
-    catch_gear = t["n_caught"].to_numpy(float) / t["n_groups"].to_numpy(float)
-    return pd.DataFrame({
-        "species": t["species"].astype(str).to_numpy(), "gear": t["gear"].astype(str).to_numpy(),
-        "reference": t["reference"].astype(str).to_numpy(),
-        "catch_reference": catch_gear * t["factor_median"].to_numpy(float), "catch_gear": catch_gear,
-        "catch_source": f"factor set {Path(directory).name} (n_caught / n_groups x factor_median)",
-    })
+    reference = fs.reference
+    groups_of_gear = t.groupby("gear")["n_groups"].max()
+    ref_caught = _reference_catch_in_cells(fs, reference)
+    rows = []
+    for r in t.itertuples():
+        n_g = float(groups_of_gear[r.gear])
+        catch_gear = float(r.n_caught) / n_g
+        if ref_caught is not None and (r.gear, r.species) in ref_caught:
+            catch_ref, how = ref_caught[(r.gear, r.species)] / n_g, "reference catch from the stored cells"
+        else:
+            catch_ref, how = catch_gear * float(r.factor_median), "reference catch = gear catch x factor"
+        rows.append({"species": str(r.species), "gear": str(r.gear), "reference": reference,
+                     "catch_reference": catch_ref, "catch_gear": catch_gear,
+                     "catch_source": f"factor set {Path(directory).name} (n_caught / {int(n_g)} groups; {how})"})
+    return pd.DataFrame(rows)
+
+
+def _reference_catch_in_cells(fs, reference: str) -> dict | None:
+    """{(gear, species): fish the reference caught in the cells it shared with the gear}, or None."""
+    idata = fs.idata
+    if "constant_data" not in idata.groups():
+        return None
+    data = idata.constant_data
+    if not {"counts", "present", "cell_species"} <= set(data.data_vars):
+        return None
+    gears = [str(g) for g in data["counts"].coords["gear"].values]
+    species = [str(s) for s in data.coords["species"].values] if "species" in data.coords else None
+    if species is None or reference not in gears:
+        return None
+    counts = np.asarray(data["counts"].values, dtype=float)
+    present = np.asarray(data["present"].values, dtype=bool)
+    cell_species = np.asarray(data["cell_species"].values, dtype=int)
+    ref = gears.index(reference)
+    out = {}
+    for g, gear in enumerate(gears):
+        if g == ref:
+            continue
+        both = present[:, g] & present[:, ref]
+        sums = np.bincount(cell_species[both], weights=counts[both, ref], minlength=len(species))
+        out.update({(gear, s): float(sums[k]) for k, s in enumerate(species)})
+    return out
 
 
 def kappa_from_factors(directory) -> pd.DataFrame:
@@ -365,7 +400,7 @@ def _trigamma(x: np.ndarray) -> np.ndarray:
 
 
 def fit_split_ml(y_gear: np.ndarray, y_ref: np.ndarray, overdispersed: bool = True, max_iter: int = 60,
-                 tol: float = 1e-7) -> tuple[np.ndarray, np.ndarray]:
+                 tol: float = 1e-6, start: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Maximum-likelihood split of paired catches, vectorised over studies.
 
     y_gear, y_ref : (..., n_groups) counts of the gear and the reference in each pair (equal
@@ -373,11 +408,19 @@ def fit_split_ml(y_gear: np.ndarray, y_ref: np.ndarray, overdispersed: bool = Tr
         left out of a study can be marked by giving both counts 0).
     overdispersed : True fits the beta-binomial split (theta and log kappa, the two-gear case of
         calib.model's Dirichlet-multinomial); False the binomial (kappa = inf), closed form.
+    start : optional log kappa to start from, shape (...,) (e.g. the fit of a smaller nested study);
+        default log 3. theta starts at the ratio of the sums.
 
     Returns (theta_hat, se) with shape (...,): theta = log(q_gear / q_ref), se on the log scale
     from the inverse observed information (profiling kappa). Studies in which one gear caught
     nothing give theta_hat = -+inf and se = inf (not estimable).
     """
+    theta, se, _ = _fit_split(y_gear, y_ref, overdispersed, max_iter, tol, start)
+    return theta, se
+
+
+def _fit_split(y_gear, y_ref, overdispersed=True, max_iter=60, tol=1e-6, start=None):
+    """:func:`fit_split_ml` that also returns the fitted log kappa (inf for the binomial split)."""
     y1 = np.asarray(y_gear, dtype=float)
     y0 = np.asarray(y_ref, dtype=float)
     s1, s0 = y1.sum(axis=-1), y0.sum(axis=-1)
@@ -387,11 +430,13 @@ def fit_split_ml(y_gear: np.ndarray, y_ref: np.ndarray, overdispersed: bool = Tr
         binom_se = np.sqrt(1.0 / np.where(ok, s1, 1.0) + 1.0 / np.where(ok, s0, 1.0))
     if not overdispersed:
         theta = np.where(ok, theta0, np.where(s1 > 0, np.inf, -np.inf))
-        return theta, np.where(ok, binom_se, np.inf)
+        return theta, np.where(ok, binom_se, np.inf), np.full(theta.shape, np.inf)
     n = y1 + y0
     theta = np.where(ok, theta0, 0.0)
-    phi = np.full_like(theta, math.log(DEFAULT_KAPPA))
     lo, hi = (math.log(b) for b in KAPPA_BOUNDS)
+    phi = np.full_like(theta, math.log(DEFAULT_KAPPA))
+    if start is not None:
+        phi = np.clip(np.where(np.isfinite(start), start, phi), lo, hi)
     flat_shape = theta.shape
     theta, phi = theta.reshape(-1), phi.reshape(-1)
     y1f, y0f, nf = (a.reshape(-1, a.shape[-1]) for a in (y1, y0, n))
@@ -435,8 +480,12 @@ def fit_split_ml(y_gear: np.ndarray, y_ref: np.ndarray, overdispersed: bool = Tr
         det = h_tt * h_pp - h_tp**2
         newton = (h_tt < 0) & (det > 1e-12 * np.maximum(1.0, np.abs(h_tt * h_pp)))
         safe_det = np.where(newton, det, 1.0)
-        step_t = np.clip(np.where(newton, -(h_pp * g_t - h_tp * g_p) / safe_det, 0.1 * np.tanh(g_t)), -2.0, 2.0)
-        step_p = np.clip(np.where(newton, -(h_tt * g_p - h_tp * g_t) / safe_det, 0.1 * np.tanh(g_p)), -2.0, 2.0)
+        # Where the likelihood is not locally concave (typically kappa running off to its bound, the
+        # split looking binomial), move theta by its own Newton step and log kappa by one unit uphill;
+        # the backtracking below keeps every accepted step an improvement.
+        theta_alone = np.where(h_tt < 0, -g_t / np.where(h_tt < 0, h_tt, -1.0), 0.5 * np.sign(g_t))
+        step_t = np.clip(np.where(newton, -(h_pp * g_t - h_tp * g_p) / safe_det, theta_alone), -2.0, 2.0)
+        step_p = np.clip(np.where(newton, -(h_tt * g_p - h_tp * g_t) / safe_det, np.sign(g_p)), -2.0, 2.0)
         scale = np.ones_like(th)
         old = ll[active]
         for _half in range(12):  # backtracking: never accept a step that lowers the likelihood
@@ -466,7 +515,7 @@ def fit_split_ml(y_gear: np.ndarray, y_ref: np.ndarray, overdispersed: bool = Tr
     theta, var = theta.reshape(flat_shape), var.reshape(flat_shape)
     se = np.where(ok, np.sqrt(np.maximum(var, 0.0)), np.inf)
     theta = np.where(ok, theta, np.where(s1 > 0, np.inf, -np.inf))
-    return theta, se
+    return theta, se, phi.reshape(flat_shape)
 
 
 # ----------------------------------------------------------------------------- groups needed
@@ -524,16 +573,16 @@ def groups_needed(success: np.ndarray, sizes, assurance: float = 0.8, n_boot: in
             "at_minimum": bool(est == sizes[0])}
 
 
-def _refine(share: np.ndarray, sizes: np.ndarray, assurance: float, max_extra: int = 40) -> np.ndarray:
-    """Extra study sizes around the crossing of the coarse grid: every whole number from one grid
-    step below to one above the bracketing pair (at most ``max_extra``, evenly spread), so the
-    groups needed is read off nearly every size rather than interpolated across a wide step.
+def _refine(share: np.ndarray, sizes: np.ndarray, assurance: float, max_extra: int = 12) -> np.ndarray:
+    """Extra study sizes around the crossing of the coarse grid: whole numbers between the two grid
+    sizes that bracket it (at most ``max_extra``, evenly spread), so the groups needed is read off
+    nearby sizes rather than interpolated across a wide step.
     Nested studies make these fits cheap (same simulated studies, cut at more sizes)."""
     below = np.flatnonzero(share < assurance)
     if below.size == 0 or below[-1] == len(sizes) - 1:
         return np.array([], dtype=int)
     k = int(below[-1])
-    lo, hi = int(sizes[max(k - 1, 0)]), int(sizes[min(k + 2, len(sizes) - 1)])
+    lo, hi = int(sizes[k]), int(sizes[k + 1])
     return np.unique(np.round(np.linspace(lo, hi, min(hi - lo + 1, max_extra))).astype(int))
 
 
@@ -749,18 +798,22 @@ def plan(
             fits = {}
 
             def fit_at(ns):
-                for n in ns:
-                    if n not in fits:
-                        fits[n] = fit_split_ml(y1[j, :, :n], y0[j, :, :n], overdispersed=not kinf)
+                for n in sorted(ns):
+                    if n in fits:
+                        continue
+                    smaller = [m for m in fits if m < n]  # warm start from the nested smaller study
+                    start = fits[max(smaller)][2] if smaller else None
+                    fits[n] = _fit_split(y1[j, :, :n], y0[j, :, :n], not kinf, start=start)
 
             fit_at(sizes)
-            coarse = np.array([_success(*fits[n], theta_true, target).mean() for n in sizes])
+            coarse = np.array([_success(*fits[n][:2], theta_true, target).mean() for n in sizes])
             fit_at(_refine(coarse, sizes, target.assurance))
             all_sizes = np.array(sorted(fits))
             theta_hat = np.stack([fits[n][0] for n in all_sizes], axis=1)
             se = np.stack([fits[n][1] for n in all_sizes], axis=1)
             success = _success(theta_hat, se, theta_true, target)
-            replicate_theta[(row["species"], gear)] = {"theta_hat": theta_hat, "se": se, "theta_true": theta_true}
+            replicate_theta[(row["species"], gear)] = {"sizes": all_sizes, "theta_hat": theta_hat, "se": se,
+                                                        "theta_true": theta_true}
             width = np.exp(target.z * se)
             share = success.mean(axis=0)
             for k, n in enumerate(all_sizes):
@@ -928,8 +981,13 @@ def plan_markdown(result: PlanResult) -> str:
     lines += ["", "Sources of the inputs: " + "; ".join(sorted(set(result.table["catch_source"]))) + ".",
               "Patchiness (kappa): " + "; ".join(sorted(set(result.table["kappa_source"]))) + ".",
               f"Spread of density between pairs: sd {s['density_spread']:g} on the log scale.", ""]
+    lines += ["## Fast fit against the full model", ""]
     if not result.full_fit.empty:
-        lines += ["## Fast fit against the full model", "", full_fit_sentence(result.full_fit), ""]
+        lines += [full_fit_sentence(result.full_fit), ""]
+    else:
+        lines += ["Not checked in this run: the fast fit (maximum likelihood with a Laplace interval) was not "
+                  "compared with a full Bayesian fit. Run `calib plan` without --skip-full-fit-check to see the "
+                  "difference.", ""]
     lines += ["## Design advice", ""]
     for advice, source in DESIGN_ADVICE:
         lines.append(f"- {advice} *Source: {source}*")
