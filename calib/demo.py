@@ -85,9 +85,9 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
 
     print("\n== Planning a further seine calibration: how many seine-trawl groups?\n")
     wanted = [s for s in PLAN_SPECIES if s in set(factor_set.table["species"])]
-    inputs = expected_catch_from_factors(factors_dir)
+    inputs = expected_catch_from_factors(factor_set)
     inputs = inputs[(inputs["gear"] == PLAN_GEAR) & inputs["species"].isin(wanted)]
-    plan_result = plan(inputs, PlanTarget(), kappa_table=kappa_from_factors(factors_dir), n_studies=100,
+    plan_result = plan(inputs, PlanTarget(), kappa_table=kappa_from_factors(factor_set), n_studies=100,
                        full_fit=False, seed=seed, progressbar=progressbar, input_paths=[factors_dir])
     plan_dir = plan_result.save(out / "plan")
     print(plan_result.summary())

@@ -174,6 +174,15 @@ def _problem(file, row, column, message, fix) -> Problem:
     return Problem(str(file), row, column, message, fix, str(file).lower().endswith(".csv"))
 
 
+def _factor_set(directory):
+    """(FactorSet, label) from a saved factor-set directory or an in-memory FactorSet."""
+    from calib.factors import FactorSet, load_factors
+
+    if isinstance(directory, FactorSet):
+        return directory, directory.manifest.get("factor_set_id", "in memory")
+    return load_factors(directory), Path(directory).name
+
+
 def _pair_frame(per_gear: pd.DataFrame, reference: str, source: str, file: str) -> pd.DataFrame:
     """Species x non-reference gear rows with catch_reference and catch_gear from a long frame
     (species, gear, expected_catch)."""
@@ -282,7 +291,8 @@ def expected_catch_from_records(hauls, catches, reference: str, species_names=No
 
 
 def expected_catch_from_factors(directory) -> pd.DataFrame:
-    """Expected catches per deployment implied by a fitted factor set (``calib fit`` output).
+    """Expected catches per deployment implied by a fitted factor set (``calib fit`` output
+    directory, or a :class:`calib.factors.FactorSet`).
 
     Groups where a gear fished with the reference: N_g = the largest n_groups of the gear over the
     species (exact when some species was caught in every group; cells with a zero total are not
@@ -291,16 +301,14 @@ def expected_catch_from_factors(directory) -> pd.DataFrame:
     else catch_gear x factor_median (equal effort per deployment assumed). Rows for length classes
     or covariate levels are left out.
     """
-    from calib.factors import load_factors
-
-    fs = load_factors(directory)
+    fs, name = _factor_set(directory)
     t = fs.table.copy()
     for col in ("length_mm", "level"):
         if col in t:
             t = t[t[col].isna() | (t[col].astype(str) == "")]
     t = t[(t["n_groups"] > 0) & np.isfinite(t["factor_median"]) & np.isfinite(t["n_caught"])]
     if t.empty:
-        raise InputError([_problem(Path(directory) / "factors.csv", None, "factor_median",
+        raise InputError([_problem(f"{name}/factors.csv", None, "factor_median",
                                    "no factor with a median and catches to plan from",
                                    "give expected catches with --catch-table or survey records instead")])
     reference = fs.reference
@@ -316,7 +324,7 @@ def expected_catch_from_factors(directory) -> pd.DataFrame:
             catch_ref, how = catch_gear * float(r.factor_median), "reference catch = gear catch x factor"
         rows.append({"species": str(r.species), "gear": str(r.gear), "reference": reference,
                      "catch_reference": catch_ref, "catch_gear": catch_gear,
-                     "catch_source": f"factor set {Path(directory).name} (n_caught / {int(n_g)} groups; {how})"})
+                     "catch_source": f"factor set {name} (n_caught / {int(n_g)} groups; {how})"})
     return pd.DataFrame(rows)
 
 
@@ -347,15 +355,14 @@ def _reference_catch_in_cells(fs, reference: str) -> dict | None:
 
 
 def kappa_from_factors(directory) -> pd.DataFrame:
-    """Posterior median of kappa per species x gear from a fitted factor set (posterior.nc).
+    """Posterior median of kappa per species x gear from a fitted factor set (posterior.nc; a
+    directory or a :class:`calib.factors.FactorSet`).
 
     Uses log_kappa of the gear combination made of exactly the reference and the gear when the
     fit had one; otherwise the median over the combinations that include the gear. Returns
     species, gear, kappa, kappa_source (empty when the factor set has no kappa, e.g. a ratio fit).
     """
-    from calib.factors import load_factors
-
-    fs = load_factors(directory)
+    fs, name = _factor_set(directory)
     post = fs.idata.posterior if hasattr(fs.idata, "posterior") else None
     if post is None or "log_kappa" not in post:
         return pd.DataFrame(columns=["species", "gear", "kappa", "kappa_source"])
@@ -371,7 +378,7 @@ def kappa_from_factors(directory) -> pd.DataFrame:
         for species in lk.coords["species"].values:
             values = np.exp(lk.sel(combo=use, species=species).values).ravel()
             rows.append({"species": str(species), "gear": gear, "kappa": float(np.median(values)),
-                         "kappa_source": f"posterior median, {Path(directory).name} ({'+'.join(sorted(set(use)))})"})
+                         "kappa_source": f"posterior median, factor set {name} ({', '.join(use)})"})
     return pd.DataFrame(rows)
 
 
