@@ -22,6 +22,7 @@ conversion factors, checks them, and (in later steps) converts survey records
 to reference-gear units with the uncertainty carried along.
 
 Typical order:  calib check  ->  calib fit  ->  (convert, series, trend, report)
+Before a calibration study:  calib plan (how many pairs are needed)
 Try it on invented data first:  calib demo --out demo_output
 """
 

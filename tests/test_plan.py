@@ -346,6 +346,31 @@ def test_cli_end_to_end_on_a_tiny_case(tmp_path, capsys):
     pd.testing.assert_frame_equal(plan_a, pd.read_csv(tmp_path / "b" / "plan.csv"))
 
 
+def test_cli_survey_records_bad_input_and_factor_set_route(tmp_path, capsys):
+    study = simulate_calibration(20, ["old", "new"], {"new": [0.3]}, [1.5], kappa=2.0, seed=6, species=["pinfish"])
+    hauls = study.hauls.copy()
+    hauls.loc[2, "effort"] = -1.0
+    hauls.to_csv(tmp_path / "hauls.csv", index=False)
+    study.catches.to_csv(tmp_path / "catches.csv", index=False)
+    out = tmp_path / "plan"
+    code = main(["plan", "--hauls", str(tmp_path / "hauls.csv"), "--catches", str(tmp_path / "catches.csv"),
+                 "--reference", "old", "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 1 and "hauls.csv" in err and "row 3" in err and "'effort'" in err
+    assert not out.exists()
+    # Factor-set route: expected catches and kappa from a saved factor set (test above builds one).
+    test_expected_catch_and_kappa_from_a_factor_set(tmp_path)
+    code = main(["plan", "--factors", str(tmp_path / "factors"), "--species", "pinfish", "--studies", "20",
+                 "--max-groups", "20", "--skip-full-fit-check", "--quiet", "--out", str(out)])
+    assert code == 0
+    row = pd.read_csv(out / "plan.csv").iloc[0]
+    assert row["species"] == "pinfish" and row["kappa"] == pytest.approx(2.0 * math.exp(0.1))
+    assert "posterior median" in row["kappa_source"]
+    assert main(["plan", "--factors", str(tmp_path / "factors"), "--species", "menhaden", "--out",
+                 str(tmp_path / "other")]) == 1
+    assert "menhaden not in the expected catches" in capsys.readouterr().err
+
+
 def test_typed_table_reader_returns_one_row_per_species_and_gear(tmp_path):
     got = expected_catch_from_table(_write(tmp_path / "c.csv", GOOD), "otter").set_index("species")
     assert got.loc["pinfish", "catch_reference"] == 12 and got.loc["pinfish", "catch_gear"] == 30
