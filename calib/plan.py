@@ -76,7 +76,8 @@ THETA_BOUND = 15.0
 
 CATCH_TABLE_COLUMNS = ("species", "gear", "expected_catch")
 PLAN_COLUMNS = [
-    "species", "gear", "reference", "catch_reference", "catch_gear", "factor", "kappa", "kappa_source",
+    "species", "gear", "reference", "catch_reference", "catch_gear", "factor_per_deployment", "kappa",
+    "kappa_source",
     "catch_source", "target", "assurance", "groups_needed", "mc_sd", "mc_lower", "mc_upper",
     "success_at_max", "max_groups", "verdict", "note",
 ]
@@ -711,12 +712,15 @@ class PlanResult:
                 "elapsed_s": round(self.elapsed_s, 2)}
 
 
-def _verdict(row, need: dict, share_at_max: float, target: PlanTarget, max_groups: int) -> tuple[str, str]:
+def _verdict(need: dict, share_at_max: float, width_at_max: float, target: PlanTarget,
+             max_groups: int) -> tuple[str, str]:
     pct = f"{100 * target.assurance:g}%"
     if need["groups_needed"] == math.inf:
+        typical = (f" With {max_groups} pairs the typical study's interval ends lie within a factor "
+                   f"{width_at_max:.2f} of the median." if math.isfinite(width_at_max) else "")
         return ("not reachable",
                 f"cannot be calibrated to this target with a realistic study: even {max_groups} pairs meet it in "
-                f"only {100 * share_at_max:.0f}% of simulated studies (needed: {pct}).")
+                f"only {100 * share_at_max:.0f}% of simulated studies (needed: {pct}).{typical}")
     rng = (f"Monte Carlo range {need['mc_lower']:g}-{need['mc_upper']:g}" if math.isfinite(need["mc_upper"])
            else f"Monte Carlo range {need['mc_lower']:g} to more than {max_groups}")
     if need["at_minimum"]:
@@ -779,7 +783,7 @@ def plan(
                 if (r["species"], r["gear"]) in k.index:
                     rows.loc[i, "kappa"] = float(k.loc[(r["species"], r["gear"]), "kappa"])
                     rows.loc[i, "kappa_source"] = str(k.loc[(r["species"], r["gear"]), "kappa_source"])
-    rows["factor"] = rows["catch_reference"] / rows["catch_gear"].where(rows["catch_gear"] > 0)
+    rows["factor_per_deployment"] = rows["catch_reference"] / rows["catch_gear"].where(rows["catch_gear"] > 0)
     truth = _plan_truth(rows, target)
     can = (rows["catch_reference"] > 0) & (rows["catch_gear"] > 0)
 
@@ -831,7 +835,8 @@ def plan(
                                    "success_se": math.sqrt(share[k] * (1 - share[k]) / n_studies),
                                    "n_studies": n_studies, "not_estimable": int(np.sum(~np.isfinite(se[:, k])))})
             need = groups_needed(success, all_sizes, target.assurance, n_boot=n_boot, seed=seed + j)
-            verdict, note = _verdict(row, need, share[-1], target, max_groups)
+            width_at_max = float(np.quantile(width[:, -1], 0.5, method="inverted_cdf"))
+            verdict, note = _verdict(need, share[-1], width_at_max, target, max_groups)
             table_rows.append({**_row_base(rows.loc[idx], target), **{k: need[k] for k in
                                ("groups_needed", "mc_sd", "mc_lower", "mc_upper")},
                                "success_at_max": share[-1], "max_groups": max_groups, "verdict": verdict,
@@ -870,7 +875,8 @@ def plan(
 
 def _row_base(row, target: PlanTarget) -> dict:
     return {"species": row["species"], "gear": row["gear"], "reference": row["reference"],
-            "catch_reference": row["catch_reference"], "catch_gear": row["catch_gear"], "factor": row["factor"],
+            "catch_reference": row["catch_reference"], "catch_gear": row["catch_gear"],
+            "factor_per_deployment": row["factor_per_deployment"],
             "kappa": row["kappa"], "kappa_source": row["kappa_source"], "catch_source": row["catch_source"],
             "target": target.describe(), "assurance": target.assurance}
 
@@ -976,14 +982,16 @@ def plan_markdown(result: PlanResult) -> str:
              f"{100 * t.assurance:g}%; its Monte Carlo range comes from a bootstrap over the simulated studies.", "",
              "## Per species", ""]
     for r in result.table.itertuples():
-        factor = f"{r.factor:.2f}" if np.isfinite(r.factor) else "n/a"
+        factor = f"{r.factor_per_deployment:.2f}" if np.isfinite(r.factor_per_deployment) else "n/a"
         lines.append(f"- **{r.species}** ({r.gear} against {r.reference}; expected catch per deployment "
-                     f"{r.catch_reference:.3g} and {r.catch_gear:.3g}, factor {factor}, kappa {r.kappa:.3g}): {r.note}")
+                     f"{r.catch_reference:.3g} and {r.catch_gear:.3g}, factor per deployment {factor}, kappa {r.kappa:.3g}): "
+                     f"{r.note}")
     lines += ["", "| species | gear | pairs needed | Monte Carlo sd | 5-95% range | verdict |",
               "|---|---|---|---|---|---|"]
     for r in result.table.itertuples():
         sd = f"{r.mc_sd:.1f}" if np.isfinite(r.mc_sd) else ""
-        rng = "" if r.verdict == "no catch" else f"{_fmt_groups(r.mc_lower)}-{_fmt_groups(r.mc_upper)}"
+        rng = ("" if r.verdict in ("no catch", "not reachable")
+               else f"{_fmt_groups(r.mc_lower)}-{_fmt_groups(r.mc_upper)}")
         lines.append(f"| {r.species} | {r.gear} | {_fmt_groups(r.groups_needed)} | {sd} | {rng} | {r.verdict} |")
     lines += ["", "Sources of the inputs: " + "; ".join(sorted(set(result.table["catch_source"]))) + ".",
               "Patchiness (kappa): " + "; ".join(sorted(set(result.table["kappa_source"]))) + ".",
