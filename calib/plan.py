@@ -43,10 +43,11 @@ Targets (:class:`PlanTarget`):
 * ``"power"``: the true factor is ``effect`` (1.5, or 1/1.5 when the expected factor is
   below 1) and the interval excludes 1 on the correct side.
 
-A study "succeeds" when it meets the target; groups needed = the smallest number of groups
-at which the share of successful studies reaches ``assurance`` (0.8), interpolated on log n
-between the grid sizes around the last crossing. Its Monte Carlo error comes from a
-bootstrap over the replicate studies (:func:`groups_needed`).
+A study "succeeds" when it meets the target; groups needed = the number of groups at which
+the share of successful studies last crosses ``assurance`` (0.8), read off a coarse log-spaced
+grid refined with up to 12 whole numbers around the crossing, interpolated on log n and
+rounded up. Its Monte Carlo error comes from a bootstrap over the replicate studies
+(:func:`groups_needed`).
 """
 
 from __future__ import annotations
@@ -1141,7 +1142,7 @@ def add_plan_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter) -
                      help="simulated studies per size (more = smaller simulation error, slower)")
     sim.add_argument("--seed", type=int, default=20261202, help="random seed; the same seed gives the same plan")
     sim.add_argument("--skip-full-fit-check", action="store_true",
-                     help="do not compare the fast fit with a full Bayesian fit (saves about a minute)")
+                     help="do not compare the fast fit with a full Bayesian fit (saves 15 s to a minute)")
     sim.add_argument("--full-fit-studies", type=_positive_int, default=2, metavar="N",
                      help="simulated studies fitted with the full model for the check")
     sim.add_argument("--quiet", action="store_true", help="no progress bar")
