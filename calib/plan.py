@@ -1000,6 +1000,9 @@ def plan_markdown(result: PlanResult) -> str:
     lines += ["## Fast fit against the full model", ""]
     if not result.full_fit.empty:
         lines += [full_fit_sentence(result.full_fit), ""]
+    elif s.get("full_fit", {}).get("done"):
+        lines += ["Not compared: no species was planned with overdispersion (without it the fast fit is the "
+                  "closed-form binomial logit, see docs/planning.md).", ""]
     else:
         lines += ["Not checked in this run: the fast fit (maximum likelihood with a Laplace interval) was not "
                   "compared with a full Bayesian fit. Run `calib plan` without --skip-full-fit-check to see the "
