@@ -22,6 +22,7 @@ conversion factors, checks them, and (in later steps) converts survey records
 to reference-gear units with the uncertainty carried along.
 
 Typical order:  calib check  ->  calib fit  ->  (convert, series, trend, report)
+Before a calibration study:  calib plan (how many pairs are needed)
 Try it on invented data first:  calib demo --out demo_output
 """
 
@@ -138,13 +139,18 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_trend_parser(sub, formatter_class=_Formatter)
 
+    from calib.plan import add_plan_parser
+
+    add_plan_parser(sub, formatter_class=_Formatter)
+
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
         description=textwrap.dedent("""\
-            Run check and fit on the bundled demo data (an invented estuary with three
-            partner programs, a legacy and a new otter trawl, and a beach seine) and print
-            what was found and where the files are. Takes a few minutes on 2 cores."""),
+            Run check, fit, convert, series, trend and a small study plan on the bundled
+            demo data (an invented estuary with three partner programs, a legacy and a new
+            otter trawl, and a beach seine) and print what was found and where the files
+            are. Takes a few minutes on 2 cores."""),
     )
     p.add_argument("--out", required=True, metavar="DIR", help="directory for all demo outputs")
     p.add_argument("--draws", type=int, default=1000, help="posterior draws per chain")
@@ -232,6 +238,12 @@ def _cmd_trend(args) -> int:
     return run_trend_command(args)
 
 
+def _cmd_plan(args) -> int:
+    from calib.plan import run_plan_command
+
+    return run_plan_command(args)
+
+
 def _cmd_demo(args) -> int:
     from calib.demo import run_demo
 
@@ -251,7 +263,7 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
 
 
 COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
-            "trend": _cmd_trend, "demo": _cmd_demo}
+            "trend": _cmd_trend, "plan": _cmd_plan, "demo": _cmd_demo}
 
 
 def main(argv: list[str] | None = None) -> int:
