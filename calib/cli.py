@@ -18,10 +18,10 @@ calib puts catches taken with different gears onto one footing.
 
 Calibration experiments (paired tows, side-by-side deployments) show how each
 gear's catch of each species relates to a reference gear. calib fits those
-conversion factors, checks them, and (in later steps) converts survey records
+conversion factors, checks them, converts survey records
 to reference-gear units with the uncertainty carried along.
 
-Typical order:  calib check  ->  calib fit  ->  (convert, series, trend, report)
+Typical order:  calib check  ->  calib fit  ->  convert  ->  series / trend  ->  report
 Try it on invented data first:  calib demo --out demo_output
 """
 
@@ -138,13 +138,18 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_trend_parser(sub, formatter_class=_Formatter)
 
+    from calib.report import add_report_parser
+
+    add_report_parser(sub, formatter_class=_Formatter)
+
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
         description=textwrap.dedent("""\
-            Run check and fit on the bundled demo data (an invented estuary with three
-            partner programs, a legacy and a new otter trawl, and a beach seine) and print
-            what was found and where the files are. Takes a few minutes on 2 cores."""),
+            Run check, fit, convert, series, trend and report on the bundled demo data (an
+            invented estuary with three partner programs, a legacy and a new otter trawl, and
+            a beach seine) and print what was found and where the files are, ending with the
+            HTML report. Takes a few minutes on 2 cores."""),
     )
     p.add_argument("--out", required=True, metavar="DIR", help="directory for all demo outputs")
     p.add_argument("--draws", type=int, default=1000, help="posterior draws per chain")
@@ -232,6 +237,12 @@ def _cmd_trend(args) -> int:
     return run_trend_command(args)
 
 
+def _cmd_report(args) -> int:
+    from calib.report import run_report_command
+
+    return run_report_command(args)
+
+
 def _cmd_demo(args) -> int:
     from calib.demo import run_demo
 
@@ -251,7 +262,7 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
 
 
 COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
-            "trend": _cmd_trend, "demo": _cmd_demo}
+            "trend": _cmd_trend, "report": _cmd_report, "demo": _cmd_demo}
 
 
 def main(argv: list[str] | None = None) -> int:

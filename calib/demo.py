@@ -27,7 +27,7 @@ def demo_data_dir(out: Path) -> Path:
 
 def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
              progressbar: bool = True) -> dict:
-    """Run check, fit, convert, series and trend on the demo data; print findings and where the files are.
+    """Run check, fit, convert, series, trend and report on the demo data; print findings and where the files are.
 
     Returns a dict of the output paths and the FactorSet (for tests and notebooks).
     """
@@ -77,6 +77,11 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     trend_dir = trend_result.save(out / "trend")
     print(trend_result.summary())
 
+    from calib.report import write_report
+
+    report_path = write_report(out / "report.html", factors_dir, converted=converted_dir, series=series_dir,
+                               trend=trend_dir)
+
     elapsed = time.perf_counter() - started
     table = factor_set.table
     print("\n== What the demo found")
@@ -90,8 +95,9 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(f"  converted:      {converted_dir}/ (records, rejected.csv, factor_draws.parquet, manifest.json)")
     print(f"  series:         {series_dir}/ (series.csv, series_draws.parquet, manifest.json)")
     print(f"  trend:          {trend_dir}/ (trend.csv, summary.md, trend_draws.parquet, manifest.json)")
-    print(f"\nDone in {elapsed:.0f} s.")
+    print(f"  report:         {report_path}  (open it in a web browser)")
+    print(f"\nDone in {elapsed:.0f} s. The report: {report_path}")
     return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,
             "converted_dir": converted_dir, "conversion": conversion,
             "series_dir": series_dir, "series": series_result,
-            "trend_dir": trend_dir, "trend": trend_result}
+            "trend_dir": trend_dir, "trend": trend_result, "report": report_path}
