@@ -196,9 +196,11 @@ def _num(value, digits: int = 3) -> str:
         return "—"
     if v.is_integer() and abs(v) < 1e15:
         return f"{int(v):,}"
-    if v != 0 and (abs(v) >= 1e5 or abs(v) < 1e-3):
+    if abs(v) >= 100:
+        return f"{v:,.1f}"
+    if v != 0 and abs(v) < 1e-3:
         return f"{v:.{digits}g}"
-    return f"{v:,.{digits}g}" if abs(v) >= 1000 else f"{v:.{digits}g}"
+    return f"{v:.{digits}g}"
 
 
 def _fmt(value, spec: str | None) -> str:
@@ -212,10 +214,11 @@ def _fmt(value, spec: str | None) -> str:
     return format(v, spec) if spec else _num(v)
 
 
-def _table(frame: pd.DataFrame, columns: dict, *, status_column: str | None = None, numeric=()) -> str:
+def _table(frame: pd.DataFrame, columns: dict, *, status_column: str | None = None, numeric=(), code=()) -> str:
     """An HTML table of ``frame`` with headings ``columns`` (column -> heading), values escaped.
 
-    ``numeric``: columns right-aligned as numbers; a dict maps them to format specs.
+    ``numeric``: columns right-aligned as numbers; a dict maps them to format specs. ``code``:
+    columns shown in a small fixed-width font that may break anywhere (paths, hashes).
     """
     specs = numeric if isinstance(numeric, dict) else {c: None for c in numeric}
     head = "".join(f"<th>{esc(h)}</th>" for h in columns.values())
@@ -230,6 +233,8 @@ def _table(frame: pd.DataFrame, columns: dict, *, status_column: str | None = No
                 cls = f' class="status status-{esc(value)}"'
             elif col in specs:
                 cls = ' class="num"'
+            elif col in code:
+                cls = ' class="code"'
             cells.append(f"<td{cls}>{text}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
     return f'<table><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
@@ -264,8 +269,12 @@ def _input_state(meta: dict) -> str:
     return "unchanged" if file_sha256(path) == meta.get("sha256") else "changed since"
 
 
-def _design(manifest: dict):
-    """(CheckSummary or None, note) from the fit's input tables, when they are unchanged."""
+def calibration_design(manifest: dict):
+    """The calibration design of a fit, from its manifest's input tables when they are unchanged.
+
+    Returns (``calib.inspect.CheckSummary`` or None, note): None with a note saying why when
+    an input table is missing or its SHA-256 differs from the one recorded at the fit.
+    """
     files = manifest.get("inputs", {})
     roles = ("hauls", "catches", "lengths", "species_recorded", "species_names")
     if not all(r in files for r in ("hauls", "catches")):
@@ -302,8 +311,8 @@ def _section_inputs(r: ReportInputs) -> str:
     if rows:
         out.append("<h3>Input tables</h3>")
         out.append(_table(pd.DataFrame(rows), {"role": "table", "path": "file", "sha256": "SHA-256 at the fit",
-                                               "now": "file now"}))
-    summary, note = _design(m)
+                                               "now": "file now"}, code=("path", "sha256")))
+    summary, note = calibration_design(m)
     cells = m.get("cells", {})
     out.append("<h3>Calibration design</h3>")
     if summary is not None:
@@ -546,8 +555,8 @@ section {{ background: #fff; border: 1px solid var(--rule); border-left: 4px sol
 h2 {{ font-size: 1.25rem; margin: .6rem 0 .6rem; color: var(--accent); }}
 h3 {{ font-size: 1rem; margin: 1.2rem 0 .4rem; }}
 table {{ border-collapse: collapse; margin: .5rem 0 1rem; font-size: .85rem; }}
-th, td {{ border-bottom: 1px solid var(--rule); padding: .25rem .6rem; text-align: left; vertical-align: top;
-          overflow-wrap: anywhere; }}
+th, td {{ border-bottom: 1px solid var(--rule); padding: .25rem .6rem; text-align: left; vertical-align: top; }}
+td.code {{ font-family: "DejaVu Sans Mono", monospace; font-size: .75rem; word-break: break-all; }}
 table {{ max-width: 100%; }}
 th {{ background: #eef2f6; }}
 td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
