@@ -94,7 +94,10 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(f"  factor set:     {factors_dir}/ (factors.csv, checks.csv, posterior.nc, manifest.json)")
     print(f"  converted:      {converted_dir}/ (records, rejected.csv, factor_draws.parquet, manifest.json)")
     print(f"  series:         {series_dir}/ (series.csv, series_draws.parquet, manifest.json)")
-    print(f"  trend:          {trend_dir}/ (trend.csv, summary.md, trend_draws.parquet, manifest.json)")
+    print(f"  trend:          {trend_dir}/ (trend.csv, summary.md, trend_series.csv, gear_mix.csv, "
+          "source_series.csv, source_agreement.csv, trend_draws.parquet, manifest.json)")
+    print(f"  figures:        {trend_dir / 'figures'}/ (raw_vs_harmonized.png, artifact.png, gear_mix.png, "
+          "source_series.png)")
     print(f"  report:         {report_path}  (open it in a web browser)")
     print(f"\nDone in {elapsed:.0f} s. The report: {report_path}")
     return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,

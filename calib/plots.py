@@ -22,14 +22,14 @@ import numpy as np
 INK = "#222222"
 HARMONIZED = "#1d4f91"  # deep estuary blue: harmonized (reference-gear) series and intervals
 RAW = "#e08a1e"  # marsh amber: raw merged records
-ARTIFACT = "#8e3b76"  # plum: the part of a change due to the change of methods
+ARTIFACT = "#c27bb0"  # orchid: the part of a change due to the change of methods
 NEUTRAL = "#8a8a8a"  # reference lines, grid, "not estimable"
 
 # Status of a factor (ok / warn / fail): blue, sand, brick, told apart by lightness too.
 STATUS_COLOURS = {"ok": "#1d4f91", "warn": "#d9b44a", "fail": "#a8322d"}
 
 # Categories (gears, sources, species): alternating dark / light so neighbours differ in lightness.
-CATEGORICAL = ("#1d4f91", "#e08a1e", "#5fa8d3", "#8e3b76", "#3b8c6e", "#d9b44a", "#a8322d", "#6b6b6b")
+CATEGORICAL = ("#1d4f91", "#e08a1e", "#5fa8d3", "#5c1f4f", "#3b8c6e", "#d9b44a", "#a8322d", "#6b6b6b")
 
 
 def categorical_colours(labels) -> dict:
@@ -93,6 +93,176 @@ def figure_png(fig, dpi: int = 110) -> bytes:
     return buffer.getvalue()
 
 
+# --- series and trend attribution (calib trend)
+
+
+def _pct_axis(ax, values) -> None:
+    """A log-ratio axis (x) labelled in percent change: equal steps for equal multiplicative changes."""
+    from matplotlib.ticker import FixedLocator, NullLocator
+
+    finite = np.asarray([v for v in values if v is not None and np.isfinite(v)], dtype=float)
+    ratios = 1 + finite / 100 if finite.size else np.array([0.5, 2.0])
+    lo = max(float(np.nanmin(ratios)), 1e-3) if ratios.size else 0.5
+    hi = float(np.nanmax(ratios)) if ratios.size else 2.0
+    lo, hi = min(lo, 0.9), max(hi, 1.1)
+    ax.set_xscale("log")
+    ax.set_xlim(lo / 1.15, hi * 1.15)
+    candidates = np.array([-99, -95, -90, -80, -60, -40, -20, 0, 25, 50, 100, 200, 400, 900, 1900, 4900])
+    ticks = [c for c in candidates if lo / 1.15 <= 1 + c / 100 <= hi * 1.15]
+    ax.xaxis.set_major_locator(FixedLocator([1 + t / 100 for t in ticks]))
+    ax.xaxis.set_minor_locator(NullLocator())
+    ax.set_xticklabels([f"{t:+d}%" if t else "0" for t in ticks])
+
+
+def plot_series_bands(series_table, species=None, ncols: int = 3):
+    """Raw merged vs harmonized annual index per species, with their interval bands.
+
+    series_table : trend_series.csv of ``calib trend`` (columns species, year, estimate, lower,
+        upper, raw_estimate, raw_lower, raw_upper; optional harmonized_fit / raw_fit, drawn as
+        dashed lines over the years the slope used). Values are cpue: the harmonized series in
+        reference-gear units, the raw one in whatever units the merged gears had.
+    species : list of species to draw (default all, in table order).
+    Returns a matplotlib Figure, one panel per species.
+    """
+    t = series_table
+    names = list(dict.fromkeys(t["species"].astype(str))) if species is None else list(species)
+    fig, axes = new_figure(max(len(names), 1), ncols=ncols)
+    level = (f"{100 * float(t['interval'].iloc[0]):.0f}% interval" if "interval" in t and len(t)
+             else "interval")
+    for ax, sp in zip(axes, names):
+        d = t[t["species"].astype(str) == sp].sort_values("year")
+        yr = d["year"].to_numpy(dtype=float)
+        ax.fill_between(yr, d["raw_lower"], d["raw_upper"], color=RAW, alpha=0.22, linewidth=0)
+        ax.plot(yr, d["raw_estimate"], color=RAW, marker="o", markersize=2.5, linewidth=1.2, label="raw merged")
+        ax.fill_between(yr, d["lower"], d["upper"], color=HARMONIZED, alpha=0.22, linewidth=0)
+        ax.plot(yr, d["estimate"], color=HARMONIZED, marker="s", markersize=2.5, linewidth=1.4,
+                label="harmonized")
+        for col, colour in (("raw_fit", RAW), ("harmonized_fit", HARMONIZED)):
+            if col in d and d[col].notna().any():
+                ax.plot(yr, d[col], color=colour, linestyle="--", linewidth=1.0)
+        ax.set_title(sp, fontsize=9)
+        ax.set_ylim(bottom=0)
+        ax.set_ylabel("catch per unit effort", fontsize=8)
+    if names:
+        axes[0].legend(fontsize=7, frameon=False, loc="upper left",
+                       title=f"bands: {level}; dashed: log-linear trend", title_fontsize=6)
+    fig.suptitle("Raw merged records and the harmonized series (reference-gear units)", fontsize=10)
+    return fig
+
+
+def plot_artifact_bars(trend_table):
+    """Per species: change over the period after harmonization and the part due to the change of
+    methods, each with its interval; the raw merged change as a marker.
+
+    trend_table : trend.csv of ``calib trend``. The axis is logarithmic in the ratio
+    (1 + change), labelled in percent, so raw = harmonized x artifact reads as a sum of bars.
+    Species without an estimable trend are listed with "not estimable".
+    Returns a matplotlib Figure.
+    """
+    t = trend_table.reset_index(drop=True)
+    n = len(t)
+    plt_fig, axes = new_figure(1, ncols=1, panel_size=(7.0, 0.45 * max(n, 2) + 1.2))
+    ax = axes[0]
+    ax.grid(axis="y", visible=False)
+    ax.grid(axis="x", color="#dddddd", linewidth=0.6)
+    y = np.arange(n)[::-1]
+    values = []
+    for yi, r in zip(y, t.itertuples()):
+        if not np.isfinite(getattr(r, "harmonized_change_pct", np.nan)):
+            ax.text(1.0, yi, "  not estimable", va="center", fontsize=7, color=NEUTRAL)
+            continue
+        for offset, (mid, lo, hi, colour) in zip((0.17, -0.17), (
+                (r.harmonized_change_pct, r.harmonized_change_lower, r.harmonized_change_upper, HARMONIZED),
+                (r.artifact_pct, r.artifact_lower, r.artifact_upper, ARTIFACT))):
+            ratio = 1 + mid / 100
+            ax.barh(yi + offset, ratio - 1, left=1, height=0.3, color=colour, alpha=0.85)
+            ax.errorbar(ratio, yi + offset, xerr=[[ratio - (1 + lo / 100)], [(1 + hi / 100) - ratio]],
+                        color=INK, linewidth=0.9, capsize=2)
+            values += [mid, lo, hi]
+        ax.plot(1 + r.raw_change_pct / 100, yi, marker="D", color=RAW, markeredgecolor=INK, markersize=5,
+                linestyle="none")
+        values.append(r.raw_change_pct)
+    _pct_axis(ax, values)
+    ax.axvline(1.0, color=INK, linewidth=0.8)
+    ax.set_yticks(y)
+    ax.set_yticklabels([str(s) for s in t["species"]], fontsize=8)
+    ax.set_xlabel("change over the period", fontsize=8)
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    level = f"{100 * float(t['interval'].iloc[0]):.0f}%" if n and "interval" in t else ""
+    handles = [Patch(color=HARMONIZED, label="harmonized change (the animals)"),
+               Patch(color=ARTIFACT, label="method artifact (change of gears)"),
+               Line2D([], [], marker="D", color=RAW, markeredgecolor=INK, linestyle="none",
+                      label="raw merged change")]
+    ax.legend(handles=handles, fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.16),
+              ncols=3, title=f"whiskers: {level} intervals", title_fontsize=6)
+    ax.set_title("How much of each change is the change of methods?", fontsize=10)
+    return plt_fig
+
+
+def plot_gear_mix(mix_table):
+    """Share of hauls by gear and year (stacked bars), and of effort within each effort unit.
+
+    mix_table : gear_mix.csv of ``calib trend`` (year, gear, effort_unit, hauls, haul_share,
+    effort, effort_share). One panel for hauls, one per effort unit for effort.
+    Returns a matplotlib Figure.
+    """
+    t = mix_table
+    units = [u for u in dict.fromkeys(t["effort_unit"].astype(str)) if t.loc[t["effort_unit"] == u,
+                                                                                  "effort"].notna().any()]
+    fig, axes = new_figure(1 + len(units), ncols=1, panel_size=(7.0, 2.3))
+    gears = sorted(t["gear"].astype(str).unique())
+    colours = categorical_colours(gears)
+    years = np.sort(t["year"].unique())
+    panels = [("haul_share", None, "share of hauls")] + [("effort_share", u, f"share of effort ({u})")
+                                                          for u in units]
+    for ax, (column, unit, label) in zip(axes, panels):
+        d = t if unit is None else t[t["effort_unit"].astype(str) == unit]
+        wide = d.pivot_table(index="year", columns="gear", values=column, aggfunc="sum").reindex(years).fillna(0.0)
+        bottom = np.zeros(len(years))
+        for g in gears:
+            if g in wide:
+                ax.bar(years, wide[g].to_numpy(), bottom=bottom, color=colours[g], width=0.85,
+                       label=g, edgecolor="white", linewidth=0.3)
+                bottom += wide[g].to_numpy()
+        ax.set_ylim(0, 1)
+        ax.set_ylabel(label, fontsize=8)
+    axes[0].legend(fontsize=7, frameon=False, ncols=min(len(gears), 4), loc="upper center",
+                   bbox_to_anchor=(0.5, 1.28))
+    fig.suptitle("Which gears the records come from, year by year", fontsize=10)
+    return fig
+
+
+def plot_source_series(source_table, species=None, ncols: int = 3):
+    """Harmonized series of each source (partner dataset) side by side, per species, with bands.
+
+    source_table : source_series.csv of ``calib trend`` (species, source, year, estimate, lower,
+    upper). Sources sampling different strata may differ in level for real; compare the shape.
+    Returns a matplotlib Figure, one panel per species.
+    """
+    t = source_table
+    names = list(dict.fromkeys(t["species"].astype(str))) if species is None else list(species)
+    sources = sorted(t["source"].astype(str).unique())
+    colours = categorical_colours(sources)
+    fig, axes = new_figure(max(len(names), 1), ncols=ncols)
+    for ax, sp in zip(axes, names):
+        for src in sources:
+            d = t[(t["species"].astype(str) == sp) & (t["source"].astype(str) == src)].sort_values("year")
+            if d.empty:
+                continue
+            yr = d["year"].to_numpy(dtype=float)
+            ax.fill_between(yr, d["lower"], d["upper"], color=colours[src], alpha=0.18, linewidth=0)
+            ax.plot(yr, d["estimate"], color=colours[src], linewidth=1.2, marker="o", markersize=2, label=src)
+        ax.set_title(sp, fontsize=9)
+        ax.set_ylim(bottom=0)
+        ax.set_ylabel("cpue, reference units", fontsize=8)
+    if names:
+        axes[0].legend(fontsize=6, frameon=False, loc="upper left")
+    fig.suptitle("Harmonized series of each partner dataset", fontsize=10)
+    return fig
+
+
 # --- factor set and checks
 #
 # These read a saved factor set's tables (factors.csv, checks.csv, the manifest's design) and
@@ -141,14 +311,14 @@ def _empty_figure(message: str):
     return fig
 
 
-def forest_figure(table, *, reference: str | None = None):
+def plot_forest(table, *, reference: str | None = None):
     """Forest plot of the conversion factors: one panel per gear, one row per species.
 
     ``table``: a factors.csv frame (``FactorSet.table``). Points are the posterior medians,
     lines the ``interval`` (e.g. 90%) intervals, on a log scale (a factor of 2 and of 1/2
     lie equally far from 1); colour is the factor's status (``STATUS_COLOURS``). Factors
     that could not be estimated are listed as "not estimable". Length-class rows are left
-    out (see ``length_factor_figure``).
+    out (see ``plot_factor_by_length``).
     """
     from matplotlib.lines import Line2D
 
@@ -191,7 +361,7 @@ def forest_figure(table, *, reference: str | None = None):
     return fig
 
 
-def convergence_figure(table, *, rules: dict | None = None):
+def plot_convergence(table, *, rules: dict | None = None):
     """Sampler checks per factor: R-hat (left) and bulk / tail effective sample size (right).
 
     ``table``: a factors.csv frame with rhat, ess_bulk and ess_tail. Dashed lines mark the
@@ -237,7 +407,7 @@ def convergence_figure(table, *, rules: dict | None = None):
     return fig
 
 
-def ppc_figure(checks, *, rules: dict | None = None):
+def plot_ppc(checks, *, rules: dict | None = None):
     """Posterior predictive check of each factor's split: the p-value ``ppp`` per gear x species.
 
     ``checks``: a checks.csv frame (gear, species, ppp). ``ppp`` is the share of replicated
@@ -276,7 +446,7 @@ def ppc_figure(checks, *, rules: dict | None = None):
     return fig
 
 
-def gear_network_figure(combos, *, reference: str | None = None):
+def plot_gear_network(combos, *, reference: str | None = None):
     """Which gears fished together: gears as points, a line for each pair of gears that shared
     calibration groups, labelled with the number of such groups.
 
@@ -324,7 +494,7 @@ def gear_network_figure(combos, *, reference: str | None = None):
     return fig
 
 
-def length_factor_figure(table, *, reference: str | None = None):
+def plot_factor_by_length(table, *, reference: str | None = None):
     """Factor by length class, one panel per species, a line and band per gear (log scale).
 
     ``table``: a factors.csv frame; only rows with a ``length_mm`` value are drawn (the

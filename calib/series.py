@@ -423,7 +423,7 @@ def _codes_from_conversion(conversion, fkeys, by_stratum: bool, where: str) -> _
 def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = None, seed: int = 0,
                  by_stratum: bool = True, uncertainty: str = "both", exact_max_hauls: int = EXACT_MAX_HAULS,
                  incomplete: str = "flag", where: str = "records",
-                 draws_where: str = "factor_draws") -> SeriesDraws:
+                 draws_where: str = "factor_draws", stream: int | None = None) -> SeriesDraws:
     """Paired draws of the harmonized (and raw) series: the estimator shared by series and trend.
 
     Parameters
@@ -449,6 +449,10 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
     incomplete : "flag" (default) gives incomplete years the mean over the strata sampled;
         "blank" leaves their combined value empty (NaN).
     where, draws_where : names of the inputs for error messages.
+    stream : None (default) resamples with the generator that picked the draws; a number gives
+        the resampling its own stream, ``default_rng([seed, stream])``, after the same pick of
+        draws. Series of disjoint subsets of records (e.g. one per source) compared draw by
+        draw need the same factor draws but independent resamples: give each its own stream.
 
     Returns
     -------
@@ -484,6 +488,8 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
         pick = np.sort(rng.choice(len(draw_numbers), size=int(draws), replace=False))
     else:
         pick = np.arange(len(draw_numbers))
+    if stream is not None:
+        rng = np.random.default_rng([int(seed), int(stream)])
     F = F_all[:, pick]
     D = F.shape[1]
     codes = (_codes_from_conversion(records, fkeys, by_stratum, where) if is_conv
@@ -1029,11 +1035,12 @@ class SeriesResult:
         return directory
 
 
-def _read_converted(converted) -> tuple[pd.DataFrame, pd.DataFrame, dict, str, str, dict]:
-    """Records (only the columns series needs), factor draws, the conversion manifest and names."""
+def _read_converted(converted, extra=()) -> tuple[pd.DataFrame, pd.DataFrame, dict, str, str, dict]:
+    """Records (only the columns series needs, plus ``extra`` ones where present), factor draws,
+    the conversion manifest and names. A Conversion in memory is returned as it is."""
     from calib.convert import Conversion
 
-    wanted = list(REQUIRED) + list(OPTIONAL)
+    wanted = list(REQUIRED) + list(OPTIONAL) + [c for c in extra if c not in REQUIRED + OPTIONAL]
     if isinstance(converted, Conversion):
         return converted, converted.factor_draws, converted.manifest, "converted records", "factor draws", {}
     import pyarrow.parquet as pq

@@ -67,6 +67,9 @@ import pandas as pd
 
 from calib.errors import InputError, Problem
 from calib.series import (
+    ALL,
+    OPTIONAL,
+    REQUIRED,
     add_resampling_options,
     EXACT_MAX_HAULS,
     _positive_int,
@@ -85,6 +88,15 @@ TREND_COLUMNS = ["species", "year_from", "year_to", "n_years", "raw_change_pct",
                  "interval", "draws_used", "draws_without_slope"]
 DRAW_COLUMNS = ["species", "draw", "raw_slope", "harmonized_slope", "harmonized_slope_with_residual",
                 "artifact_slope"]
+SERIES_COLUMNS = ["species", "year", "in_window", "estimate", "lower", "upper", "raw_estimate", "raw_lower",
+                  "raw_upper", "harmonized_fit", "raw_fit", "interval"]
+MIX_COLUMNS = ["year", "gear", "effort_unit", "hauls", "haul_share", "effort", "effort_share"]
+SOURCE_SERIES_COLUMNS = ["species", "source", "year", "estimate", "lower", "upper", "raw_estimate", "raw_lower",
+                         "raw_upper", "n_hauls", "strata", "complete", "interval"]
+AGREEMENT_COLUMNS = ["species", "source", "other_source", "year_from", "year_to", "n_years", "source_change_pct",
+                     "other_change_pct", "difference_pct", "difference_lower", "difference_upper", "agreement",
+                     "reason", "shared_strata", "interval"]
+AGREEMENTS = ("agree", "differ", "not comparable")
 VERDICTS = ("not estimable", "mostly method artifact", "real decline", "real increase", "no clear change",
             "too uncertain to say")
 
@@ -147,6 +159,22 @@ def loglinear_slope(y: np.ndarray, years: np.ndarray, max_iter: int = 100,
     return np.where(good, b1, np.nan), np.where(good, se, np.nan), good
 
 
+def loglinear_fitted(y: np.ndarray, years: np.ndarray, slope: np.ndarray) -> np.ndarray:
+    """Fitted values exp(a + b t) of the log-link fit of :func:`loglinear_slope`.
+
+    With an intercept, the Poisson (and quasi-Poisson) score equation for a gives
+    sum_t exp(a + b t) = sum_t y_t (McCullagh & Nelder 1989, ch. 6 -- recalled from memory),
+    so a follows from the slope in closed form. y (rows, n), slope (rows,); NaN rows stay NaN.
+    """
+    y = np.atleast_2d(np.asarray(y, dtype=float))
+    x = np.asarray(years, dtype=float)
+    x = x - x.mean()
+    b = np.asarray(slope, dtype=float).reshape(-1, 1)
+    shape = np.exp(b * x)
+    with np.errstate(all="ignore"):
+        return shape * (y.sum(axis=1, keepdims=True) / shape.sum(axis=1, keepdims=True))
+
+
 def _pct(slope, span):
     return 100.0 * np.expm1(np.asarray(slope, dtype=float) * span)
 
@@ -164,12 +192,25 @@ class TrendResult:
     draws : long table of the per-draw slopes (``DRAW_COLUMNS``), per year on the log scale.
     manifest : inputs, settings, the verdict rule, versions, timestamp, trend_id.
     notes : things the user should know.
+    series : trend_series.csv (``SERIES_COLUMNS``): the combined annual index behind the trend,
+        harmonized and raw with their intervals (the same paired draws), and the fitted
+        log-linear curves over the window.
+    gear_mix : gear_mix.csv (``MIX_COLUMNS``): share of hauls by gear and year, and of effort
+        within each effort unit (see :func:`gear_mix`).
+    source_series : source_series.csv (``SOURCE_SERIES_COLUMNS``): the harmonized series of each
+        source (partner dataset) on its own.
+    agreement : source_agreement.csv (``AGREEMENT_COLUMNS``): do two sources' harmonized
+        series change alike over the years both have (see :func:`source_agreement`).
     """
 
     table: pd.DataFrame
     draws: pd.DataFrame
     manifest: dict
     notes: list[str] = field(default_factory=list)
+    series: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SERIES_COLUMNS))
+    gear_mix: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=MIX_COLUMNS))
+    source_series: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SOURCE_SERIES_COLUMNS))
+    agreement: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=AGREEMENT_COLUMNS))
 
     def sentences(self) -> list[str]:
         """One plain sentence per species with the numbers."""
@@ -192,20 +233,57 @@ class TrendResult:
             out.append(text + f". Verdict: {r.verdict}.")
         return out
 
+    def mix_sentences(self) -> list[str]:
+        """How the share of hauls by gear moved between the first and last year."""
+        mix = self.gear_mix
+        if mix.empty:
+            return []
+        first, last = int(mix["year"].min()), int(mix["year"].max())
+        shares = mix.pivot_table(index="gear", columns="year", values="haul_share", aggfunc="sum").fillna(0.0)
+        parts = [f"{g} {100 * shares.loc[g, first]:.0f}% → {100 * shares.loc[g, last]:.0f}%" for g in shares.index]
+        moved = float((shares[last] - shares[first]).abs().sum() / 2)
+        return [f"Gear mix of the hauls, {first} → {last}: " + "; ".join(parts)
+                + f" ({100 * moved:.0f}% of the hauls changed gear between the two years)."]
+
+    def agreement_sentences(self) -> list[str]:
+        """One sentence per species and pair of sources: do their harmonized series change alike?"""
+        level = int(round(100 * self.manifest["settings"]["interval"]))
+        out = []
+        for r in self.agreement.itertuples():
+            name = str(r.species)
+            name = name[:1].upper() + name[1:]
+            if r.agreement == "not comparable":
+                out.append(f"{name}: {r.source} and {r.other_source} cannot be compared ({r.reason}).")
+                continue
+            out.append(f"{name}: after harmonization {r.source} changes {_signed(r.source_change_pct)} and "
+                       f"{r.other_source} {_signed(r.other_change_pct)} over {r.year_from}-{r.year_to}; the "
+                       f"difference is {_signed(r.difference_pct)} ({level}% interval {_signed(r.difference_lower)} "
+                       f"to {_signed(r.difference_upper)}): they {r.agreement}.")
+        return out
+
     def summary(self) -> str:
-        """Plain-language summary: one sentence per species, notes and the caution."""
+        """Plain-language summary: one sentence per species, gear mix, partner agreement, notes, caution."""
         m = self.manifest
         lines = [f"Trend attribution from conversion {m.get('conversion_id') or '(in memory)'} "
                  f"(factor set {m.get('factor_set_id')}), {m['settings']['draws_used']} paired draws", ""]
         lines += self.sentences()
+        mix = self.mix_sentences()
+        if mix:
+            lines += [""] + mix
+        agree = self.agreement_sentences()
+        if agree:
+            lines += ["", "Do the partners agree once converted? (same trend over the years both sampled; "
+                      f"rule: {AGREEMENT_RULE})"] + agree
         if self.notes:
             lines.append("")
             lines += [f"Note: {n}" for n in self.notes]
         lines += ["", f"Verdict rule: {VERDICT_RULE}", "", CAUTION]
         return "\n".join(lines)
 
-    def save(self, directory) -> Path:
-        """Write trend.csv, summary.md, trend_draws.parquet and manifest.json atomically."""
+    def save(self, directory, figures: bool = True) -> Path:
+        """Write trend.csv, summary.md, trend_draws.parquet, trend_series.csv, gear_mix.csv,
+        source_series.csv, source_agreement.csv, figures/*.png (unless ``figures`` is False) and
+        manifest.json atomically."""
         from calib.outputs import atomic_directory
 
         directory = Path(directory)
@@ -214,8 +292,29 @@ class TrendResult:
             self.table.to_csv(tmp / "trend.csv", index=False, float_format="%.6g")
             (tmp / "summary.md").write_text("# Trend attribution\n\n" + self.summary() + "\n")
             self.draws.to_parquet(tmp / "trend_draws.parquet", index=False)
+            self.series.to_csv(tmp / "trend_series.csv", index=False, float_format="%.6g")
+            self.gear_mix.to_csv(tmp / "gear_mix.csv", index=False, float_format="%.6g")
+            self.source_series.to_csv(tmp / "source_series.csv", index=False, float_format="%.6g")
+            self.agreement.to_csv(tmp / "source_agreement.csv", index=False, float_format="%.6g")
+            if figures:
+                self.save_figures(tmp / "figures")
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
+
+    def save_figures(self, directory) -> list[Path]:
+        """Draw the trend figures (calib.plots) from this result's tables into ``directory`` as PNG."""
+        from calib import plots
+
+        directory = Path(directory)
+        directory.mkdir(parents=True, exist_ok=True)
+        made = [plots.save_figure(plots.plot_series_bands(self.series), directory / "raw_vs_harmonized.png"),
+                plots.save_figure(plots.plot_artifact_bars(self.table), directory / "artifact.png")]
+        if not self.gear_mix.empty:
+            made.append(plots.save_figure(plots.plot_gear_mix(self.gear_mix), directory / "gear_mix.png"))
+        if not self.source_series.empty:
+            made.append(plots.save_figure(plots.plot_source_series(self.source_series),
+                                          directory / "source_series.png"))
+        return made
 
 
 def _signed(v) -> str:
@@ -264,7 +363,8 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
         raise ValueError(f"year_from ({year_from}) is after year_to ({year_to})")
     if not change_threshold > 0:
         raise ValueError(f"change_threshold must be above 0 (e.g. 0.1), not {change_threshold}")
-    records, factor_draws, conv_manifest, where, draws_where, inputs = _read_converted(converted)
+    records, factor_draws, conv_manifest, where, draws_where, inputs = _read_converted(
+        converted, extra=HAUL_COLUMNS)
     if interval is None:
         interval = float(conv_manifest.get("interval", 0.9))
     if not 0 < interval < 1:
@@ -272,7 +372,6 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
     sd = series_draws(records, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum,
                       uncertainty="both", exact_max_hauls=exact_max_hauls, incomplete=incomplete,
                       where=where, draws_where=draws_where)
-    del records
     years = np.asarray(sd.years)
     in_window = np.ones(len(years), dtype=bool)
     if year_from is not None:
@@ -343,8 +442,19 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
         table[c] = table[c].astype("Int64")
     draws_frame = (pd.concat(draw_frames, ignore_index=True) if draw_frames
                    else pd.DataFrame(columns=DRAW_COLUMNS))
+    series_table = _trend_series(sd, table, in_window, interval)
 
     notes = []
+    hauls = survey_hauls(records)
+    mix = gear_mix(hauls) if hauls is not None else pd.DataFrame(columns=MIX_COLUMNS)
+    if hauls is None:
+        notes.append("the converted records have no haul_id column: no gear mix table")
+    src_series, src_draws, src_notes = source_series(
+        records, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum, exact_max_hauls=exact_max_hauls,
+        incomplete=incomplete, interval=interval, where=where, draws_where=draws_where)
+    notes += src_notes
+    agreement = source_agreement(src_draws, year_from=year_from, year_to=year_to, interval=interval)
+    del records
     counts = conv_manifest.get("counts", {})
     if counts.get("rejected"):
         notes.append(f"{counts['rejected']} records were rejected by convert and are in no series or trend "
@@ -373,7 +483,230 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
     manifest["trend_id"] = "tr-" + hashlib.sha256(json.dumps(manifest, sort_keys=True, default=str).encode()
                                                   ).hexdigest()[:16]
     manifest["timestamp"] = utc_timestamp()
-    return TrendResult(table=table, draws=draws_frame, manifest=manifest, notes=notes)
+    manifest["counts"]["sources"] = sorted(src_draws)
+    manifest["counts"]["agreement"] = {a: int((agreement["agreement"] == a).sum()) for a in AGREEMENTS}
+    manifest["agreement_rule"] = AGREEMENT_RULE
+    return TrendResult(table=table, draws=draws_frame, manifest=manifest, notes=notes, series=series_table,
+                       gear_mix=mix, source_series=src_series, agreement=agreement)
+
+
+def _trend_series(sd, table: pd.DataFrame, in_window: np.ndarray, interval: float) -> pd.DataFrame:
+    """The combined annual index behind each species' trend, both series with intervals, and the
+    fitted log-linear curves over the years the slope used (trend_series.csv)."""
+    years = np.asarray(sd.years)
+    value, raw = sd.cube("value"), sd.cube("raw")
+    est, raw_est = sd.cube("estimate"), sd.cube("raw_estimate")
+    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    frames = []
+    slopes = table.set_index("species")
+    for i, sp in enumerate(sd.species):
+        has = np.isfinite(est[i]) & np.isfinite(raw_est[i])
+        if not has.any():
+            continue
+        q = row_quantiles(value[i][has], [lo_q, hi_q])
+        qr = row_quantiles(raw[i][has], [lo_q, hi_q])
+        frame = pd.DataFrame({"species": sp, "year": years[has], "in_window": in_window[has],
+                              "estimate": est[i, has], "lower": q[0], "upper": q[1],
+                              "raw_estimate": raw_est[i, has], "raw_lower": qr[0], "raw_upper": qr[1],
+                              "harmonized_fit": np.nan, "raw_fit": np.nan, "interval": interval})
+        row = slopes.loc[sp]
+        used = frame["in_window"].to_numpy()
+        if used.sum() >= MIN_YEARS and np.isfinite(row["harmonized_slope"]) and np.isfinite(row["raw_slope"]):
+            yrs = frame["year"].to_numpy()[used]
+            frame.loc[used, "harmonized_fit"] = loglinear_fitted(frame["estimate"].to_numpy()[used], yrs,
+                                                                 row["harmonized_slope"])[0]
+            frame.loc[used, "raw_fit"] = loglinear_fitted(frame["raw_estimate"].to_numpy()[used], yrs,
+                                                          row["raw_slope"])[0]
+        frames.append(frame)
+    return (pd.concat(frames, ignore_index=True)[SERIES_COLUMNS] if frames
+            else pd.DataFrame(columns=SERIES_COLUMNS))
+
+
+# ----------------------------------------------------------------------------- gear mix and partners
+
+HAUL_COLUMNS = ("haul_id", "effort", "source")  # read from converted records beside the series columns
+NO_SOURCE = "(no source)"  # label of records whose source is blank
+AGREEMENT_RULE = (
+    "per species and pair of sources, the log-linear slopes of their harmonized series over the years both "
+    "have a value (at least 3), draw by draw; 'agree' when the interval of "
+    "the difference of changes covers 0, 'differ' when it excludes 0, 'not comparable' when fewer than 3 "
+    "shared years or no finite slope"
+)
+
+
+def survey_hauls(records) -> pd.DataFrame | None:
+    """One row per haul that has a converted record: haul_id, year, gear, effort, effort_unit and
+    source where present. ``records``: a Conversion or a records DataFrame. None without haul_id."""
+    from calib.convert import Conversion
+
+    wanted = ("haul_id", "year", "gear", "effort", "effort_unit", "source")
+    if isinstance(records, Conversion):
+        lean = records.lean_records()
+        hauls = lean["hauls"]
+        cols = [c for c in wanted if c in hauls.columns]
+        return hauls.iloc[np.unique(lean["haul"])][cols].reset_index(drop=True)
+    if "haul_id" not in records.columns:
+        return None
+    cols = [c for c in wanted if c in records.columns]
+    return records[cols].drop_duplicates("haul_id").reset_index(drop=True)
+
+
+def gear_mix(hauls: pd.DataFrame) -> pd.DataFrame:
+    """Share of hauls by gear and year, and of effort within each effort unit (gear_mix.csv).
+
+    hauls : one row per haul with year, gear, effort (in its effort_unit) and effort_unit.
+    haul_share = the gear's hauls / all hauls that year. effort_share = the gear's effort /
+    the effort of every gear with the same effort unit that year (efforts in different units
+    are never added). Artifacts come from changes of this mix: a series whose mix is constant
+    cannot be bent by a conversion factor, only rescaled.
+    """
+    h = pd.DataFrame({"year": hauls["year"].astype(int).to_numpy(), "gear": hauls["gear"].astype(str).to_numpy(),
+                      "effort_unit": (hauls["effort_unit"].astype(str).to_numpy() if "effort_unit" in hauls
+                                      else ""),
+                      "effort": pd.to_numeric(hauls["effort"]).to_numpy() if "effort" in hauls else np.nan})
+    g = (h.groupby(["year", "gear", "effort_unit"], observed=True)
+         .agg(hauls=("gear", "size"), effort=("effort", "sum")).reset_index())
+    g["haul_share"] = g["hauls"] / g.groupby("year")["hauls"].transform("sum")
+    g["effort_share"] = g["effort"] / g.groupby(["year", "effort_unit"])["effort"].transform("sum")
+    return g[MIX_COLUMNS].sort_values(["year", "gear", "effort_unit"]).reset_index(drop=True)
+
+
+def _records_frame(records, columns) -> pd.DataFrame:
+    from calib.convert import Conversion
+
+    if isinstance(records, Conversion):
+        have = records.store.columns if records.store is not None else list(records.records.columns)
+        return records.record_columns([c for c in columns if c in have])
+    return records[[c for c in columns if c in records.columns]]
+
+
+def source_series(records, factor_draws: pd.DataFrame, *, draws=None, seed: int = 0, by_stratum: bool = True,
+                  exact_max_hauls: int = EXACT_MAX_HAULS, incomplete: str = "flag", interval: float = 0.9,
+                  where: str = "records", draws_where: str = "factor_draws"):
+    """The harmonized series of each source (partner dataset) on its own.
+
+    Each source's records go through :func:`calib.series.series_draws` (the same estimator as
+    ``calib series``) with the same factor draws as the merged series but its own bootstrap
+    stream, so two sources' draws share the conversion error and have independent sampling
+    error. Records with a blank source form the source "(no source)".
+
+    Returns (table with ``SOURCE_SERIES_COLUMNS`` for the combined 'all' stratum, dict source ->
+    SeriesDraws, notes). Empty with a note when the records have no source column or one source.
+    """
+    frame = _records_frame(records, list(REQUIRED) + list(OPTIONAL) + ["source"])
+    empty = pd.DataFrame(columns=SOURCE_SERIES_COLUMNS)
+    if "source" not in frame.columns:
+        return empty, {}, ["the converted records have no source column: no per-source series"]
+    src = frame["source"].astype("string").fillna("").str.strip().replace("", NO_SOURCE)
+    labels = sorted(src.unique())
+    if len(labels) < 2:
+        return empty, {}, [f"all converted records come from one source ({labels[0]}): no partner comparison"]
+    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    tables, out, notes = [], {}, []
+    for k, label in enumerate(labels):
+        sub = frame[(src == label).to_numpy()]
+        try:
+            sd = series_draws(sub, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum, uncertainty="both",
+                              exact_max_hauls=exact_max_hauls, incomplete=incomplete,
+                              where=f"{where} (source {label})", draws_where=draws_where, stream=k + 1)
+        except InputError as err:
+            notes.append(f"source {label}: no series ({err.problems[0].message})")
+            continue
+        out[label] = sd
+        sel = (sd.table["stratum"] == ALL).to_numpy()
+        t = sd.table.loc[sel, ["species", "year", "n_hauls", "complete"]].copy()
+        q, qr = row_quantiles(sd.value[sel], [lo_q, hi_q]), row_quantiles(sd.raw[sel], [lo_q, hi_q])
+        t["estimate"], t["lower"], t["upper"] = sd.estimate[sel], q[0], q[1]
+        t["raw_estimate"], t["raw_lower"], t["raw_upper"] = sd.raw_estimate[sel], qr[0], qr[1]
+        t["source"], t["interval"] = label, interval
+        if "stratum" in sub.columns:
+            strata = (sub.assign(species=sub["species"].astype(str),
+                                 stratum=sub["stratum"].astype("string").fillna(""))
+                      .groupby("species")["stratum"].agg(lambda v: ";".join(sorted(set(v) - {""}))))
+            t["strata"] = t["species"].astype(str).map(strata).fillna("")
+        else:
+            t["strata"] = ""
+        tables.append(t)
+    table = pd.concat(tables, ignore_index=True)[SOURCE_SERIES_COLUMNS] if tables else empty
+    return table, out, notes
+
+
+def source_agreement(source_draws: dict, *, year_from=None, year_to=None, interval: float = 0.9) -> pd.DataFrame:
+    """Do two sources' harmonized series change alike? One row per species and pair of sources.
+
+    Over the years (in the window) where both sources have a value for the species, the
+    log-linear slope of each source's harmonized series is taken draw by draw (the same
+    quasi-Poisson fit as the trend); draw d of both uses the same factor draw and independent
+    bootstrap resamples, so the difference of slopes carries the sampling error of both and the
+    conversion error. As for the trend's artifact, no residual term is added: year-to-year
+    swings of the animals that both sources see cancel in the difference. Partners whose animals
+    swing independently (different habitats) can then "differ" without any conversion problem;
+    the ``shared_strata`` column says when they sampled no stratum in common.
+    Only changes are compared, never levels: partners often sample different strata or
+    habitats, whose densities differ for real. Rule: ``AGREEMENT_RULE``.
+    """
+    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    labels = sorted(source_draws)
+    rows = []
+    species = sorted({str(s) for sd in source_draws.values() for s in sd.species})
+    for sp in species:
+        have = [lab for lab in labels if sp in source_draws[lab].species]
+        for a_i, a in enumerate(have):
+            for b in have[a_i + 1:]:
+                rows.append(_agreement_row(sp, a, b, source_draws[a], source_draws[b], year_from, year_to,
+                                           interval, lo_q, hi_q))
+    return pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
+
+
+def _agreement_row(sp, a, b, sd_a, sd_b, year_from, year_to, interval, lo_q, hi_q) -> dict:
+    row = {c: np.nan for c in AGREEMENT_COLUMNS}
+    row.update(species=sp, source=a, other_source=b, interval=interval, reason="", shared_strata="")
+
+    def yearly(sd):
+        i = sd.species.index(sp)
+        years = np.asarray(sd.years)
+        est, val = sd.cube("estimate")[i], sd.cube("value")[i]
+        keep = np.isfinite(est)
+        if year_from is not None:
+            keep &= years >= year_from
+        if year_to is not None:
+            keep &= years <= year_to
+        return dict(zip(years[keep].tolist(), zip(est[keep], val[keep])))
+
+    ya, yb = yearly(sd_a), yearly(sd_b)
+    shared = np.array(sorted(set(ya) & set(yb)))
+    strata_of = lambda sd: {str(s) for s in sd.table.loc[(sd.table["species"].astype(str) == sp)  # noqa: E731
+                                                         & (sd.table["stratum"] != ALL), "stratum"]}
+    row["shared_strata"] = ";".join(sorted(strata_of(sd_a) & strata_of(sd_b)))
+    row["n_years"] = len(shared)
+    if len(shared) < MIN_YEARS:
+        row.update(agreement="not comparable",
+                   reason=f"{len(shared)} year(s) with a value from both; a comparison needs {MIN_YEARS}")
+        return row
+    row["year_from"], row["year_to"] = int(shared.min()), int(shared.max())
+    span = float(shared.max() - shared.min())
+    est_a, est_b = np.array([ya[y][0] for y in shared]), np.array([yb[y][0] for y in shared])
+    val_a, val_b = np.array([ya[y][1] for y in shared]), np.array([yb[y][1] for y in shared])
+    pa, _, _ = loglinear_slope(est_a[None, :], shared)
+    pb, _, _ = loglinear_slope(est_b[None, :], shared)
+    da, sa, oka = loglinear_slope(val_a.T, shared)
+    db, sb, okb = loglinear_slope(val_b.T, shared)
+    if not (np.isfinite(pa[0]) and np.isfinite(pb[0]) and oka.all() and okb.all()):
+        row.update(agreement="not comparable",
+                   reason="a series is all zero or has a catch only in its first or last shared year")
+        return row
+    diff = da - db  # draw d of both: the same factor draw, independent resamples
+    q = row_quantiles(diff[None, :], [lo_q, hi_q])[:, 0]
+    row["source_change_pct"], row["other_change_pct"] = _pct(pa[0], span), _pct(pb[0], span)
+    row["difference_pct"] = _pct(pa[0] - pb[0], span)
+    row["difference_lower"], row["difference_upper"] = _pct(q, span)
+    covers = q[0] <= 0 <= q[1]
+    row["agreement"] = "agree" if covers else "differ"
+    row["reason"] = ("interval of the difference of changes covers 0" if covers
+                     else "interval of the difference of changes excludes 0")
+    if not row["shared_strata"]:
+        row["reason"] += "; no stratum sampled by both, so only the change is compared, not the level"
+    return row
 
 
 def _verdict(q_h, q_a, share, span, threshold) -> tuple[str, str]:
@@ -408,8 +741,14 @@ raw change = harmonized change x artifact.
 
 """ + textwrap.fill("Verdict rule: " + VERDICT_RULE, 78) + """
 
-Writes OUT/trend.csv, OUT/summary.md, OUT/trend_draws.parquet and
-OUT/manifest.json."""
+Beside it, for the data manager: the share of hauls (and of effort, within
+one effort unit) by gear and year, since artifacts come from changes of that
+mix; and the harmonized series of each source (partner dataset) side by
+side, with a check of whether partners' series change alike once converted.
+
+Writes OUT/trend.csv, OUT/summary.md, OUT/trend_draws.parquet,
+OUT/trend_series.csv, OUT/gear_mix.csv, OUT/source_series.csv,
+OUT/source_agreement.csv, OUT/figures/*.png and OUT/manifest.json."""
 
 
 def add_trend_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter) -> argparse.ArgumentParser:
@@ -432,6 +771,7 @@ def add_trend_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter) 
                    help="raw change over the period below which no artifact share is given (default 0.1 = 10%%)")
     add_resampling_options(p, incomplete_help="years missing a stratum: 'flag' uses the mean over the strata "
                                               "sampled; 'blank' leaves the year out of the trend")
+    p.add_argument("--no-figures", action="store_true", help="write the tables only, no PNG figures")
     return p
 
 
@@ -453,7 +793,10 @@ def run_trend_command(args) -> int:
                    seed=args.seed, interval=args.interval, by_stratum=not args.ignore_strata,
                    exact_max_hauls=args.exact_max_hauls, incomplete=args.incomplete,
                    change_threshold=args.change_threshold)
-    out = result.save(args.out)
+    out = result.save(args.out, figures=not args.no_figures)
     print(result.summary())
-    print(f"\nWrote {out}/: trend.csv, summary.md, trend_draws.parquet, manifest.json")
+    print(f"\nWrote {out}/: trend.csv, summary.md, trend_draws.parquet, trend_series.csv, gear_mix.csv, "
+          f"source_series.csv, source_agreement.csv, manifest.json"
+          + ("" if args.no_figures else ", figures/ (raw_vs_harmonized.png, artifact.png, gear_mix.png, "
+                                         "source_series.png)"))
     return 0

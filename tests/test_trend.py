@@ -37,22 +37,25 @@ def factor_set(species, theta, sd=0.1, n_draw=400, seed=5) -> FactorSet:
     return factor_set_from_draws(post, reference=REF, factor_set_id="fs-trend-test")
 
 
-def survey(tmp_path, gears_of_year, density_of_year, seed, year_sd=0.15, kappa=3.0):
+def survey(tmp_path, gears_of_year, density_of_year, seed, year_sd=0.15, kappa=3.0, theta_used=None):
     """Hauls (effort 100 m2) and gamma-Poisson counts with a known reference-gear density.
 
-    gears_of_year(year) -> {gear: n_hauls}; density_of_year(species, year) -> expected reference
-    cpue (per m2); each year also carries a lognormal year effect (sd ``year_sd``) per species:
-    the animals' year-to-year scatter around the trend.
+    gears_of_year(year) -> {gear: n_hauls} or {(gear, source): n_hauls}; density_of_year(species,
+    year) -> expected reference cpue (per m2); each year also carries a lognormal year effect
+    (sd ``year_sd``) per species: the animals' year-to-year scatter around the trend, shared by
+    every source. ``theta_used``: the thetas of the factor set used to convert (default the true ones).
     """
     rng = np.random.default_rng(seed)
+    tmp_path.mkdir(parents=True, exist_ok=True)
     hauls, catches = [], []
     for year in YEARS:
         year_effect = {s: np.exp(year_sd * rng.standard_normal()) for s in SPECIES}
-        for gear, n in gears_of_year(year).items():
+        for key, n in gears_of_year(year).items():
+            gear, source = key if isinstance(key, tuple) else (key, None)
             for k in range(n):
-                hid = f"{year}-{gear}-{k:03d}"
+                hid = f"{year}-{gear}-{source or ''}-{k:03d}"
                 hauls.append({"haul_id": hid, "gear": gear, "date": f"{year}-06-{1 + k % 28:02d}", "effort": 100.0,
-                              "effort_unit": "m2"})
+                              "effort_unit": "m2", **({"source": source} if source else {})})
                 for s in SPECIES:
                     q = np.exp(THETA[s]) if gear == OTHER else 1.0
                     mean = 100.0 * density_of_year(s, year) * year_effect[s] * q
@@ -62,7 +65,7 @@ def survey(tmp_path, gears_of_year, density_of_year, seed, year_sd=0.15, kappa=3
     h, c = tmp_path / "hauls.csv", tmp_path / "catches.csv"
     pd.DataFrame(hauls).to_csv(h, index=False)
     pd.DataFrame(catches).to_csv(c, index=False)
-    return convert(factor_set(SPECIES, THETA), h, c)
+    return convert(factor_set(SPECIES, THETA if theta_used is None else theta_used), h, c)
 
 
 @pytest.fixture(scope="module")
@@ -201,8 +204,12 @@ def test_save_summary_and_command_line(gear_switch, tmp_path):
                               "--draws", "200", "--seed", "4"])
     assert run_trend_command(args) == 0
     out = tmp_path / "trend"
-    assert sorted(p.name for p in out.iterdir()) == ["manifest.json", "summary.md", "trend.csv",
-                                                     "trend_draws.parquet"]
+    assert sorted(p.name for p in out.iterdir()) == ["figures", "gear_mix.csv", "manifest.json",
+                                                     "source_agreement.csv", "source_series.csv", "summary.md",
+                                                     "trend.csv", "trend_draws.parquet", "trend_series.csv"]
+    # one source only: the figures of the series, the artifact and the gear mix, no per-source figure
+    assert sorted(p.name for p in (out / "figures").iterdir()) == ["artifact.png", "gear_mix.png",
+                                                                   "raw_vs_harmonized.png"]
     table = pd.read_csv(out / "trend.csv")
     assert list(table.columns) == TREND_COLUMNS and len(table) == len(SPECIES)
     assert (table["draws_used"] == 200).all()
@@ -249,3 +256,124 @@ def test_interval_coverage_over_replicates(tmp_path):
                          lambda s, y: 0.2, seed=200 + rep), seed=rep).table
         flat_covers += list((t["harmonized_change_lower"] <= 0) & (0 <= t["harmonized_change_upper"]))
     assert np.mean(covers) >= 0.84 and np.mean(artifact_covers) >= 0.84 and np.mean(flat_covers) >= 0.84
+
+
+# ----------------------------------------------------------------------------- gear mix and partners
+
+
+def two_partners(tmp_path, theta_used=None, seed=21):
+    """Two sources sampling the same animals (same true decline, same year effects): 'dock_trawl'
+    fishes the reference gear every year; 'creek_crew' fishes OTHER until 2008 and the reference
+    from 2009."""
+    def gears(year):
+        return {(REF, "dock_trawl"): 15, (OTHER if year < 2009 else REF, "creek_crew"): 15}
+
+    return survey(tmp_path, gears, lambda s, y: 0.3 * np.exp(TRUE_SLOPE * (y - YEARS[0])), seed=seed,
+                  theta_used=theta_used)
+
+
+@pytest.fixture(scope="module")
+def partners(tmp_path_factory):
+    return trend(two_partners(tmp_path_factory.mktemp("partners")), draws=300, seed=2)
+
+
+def test_gear_mix_matches_a_pandas_crosstab_of_the_hauls(gear_switch):
+    from calib.trend import MIX_COLUMNS, gear_mix, survey_hauls
+
+    hauls = survey_hauls(gear_switch)
+    assert len(hauls) == 20 * len(YEARS)  # every haul once, however many species records it has
+    mix = gear_mix(hauls)
+    assert list(mix.columns) == MIX_COLUMNS
+    # reference: pandas' own row-normalised cross-tabulation of the hauls
+    expected = pd.crosstab(hauls["year"], hauls["gear"].astype(str), normalize="index")
+    got = mix.pivot_table(index="year", columns="gear", values="haul_share").fillna(0.0)
+    pd.testing.assert_frame_equal(got, expected, check_names=False, check_dtype=False)
+    assert np.allclose(mix.groupby(["year", "effort_unit"])["effort_share"].sum(), 1.0)
+    assert (mix.loc[mix["year"] < 2009, "gear"] == OTHER).all() and (mix.loc[mix["year"] >= 2009, "gear"] == REF).all()
+
+
+def test_effort_shares_never_add_different_units():
+    from calib.trend import gear_mix
+
+    hauls = pd.DataFrame({"year": [2010] * 4, "gear": ["seine", "seine", "trawl", "trap"],
+                          "effort": [300.0, 100.0, 1200.0, 5.0], "effort_unit": ["m2", "m2", "m2", "set"]})
+    mix = gear_mix(hauls).set_index(["gear", "effort_unit"])
+    assert mix.loc[("seine", "m2"), "hauls"] == 2 and mix.loc[("seine", "m2"), "haul_share"] == 0.5
+    assert mix.loc[("seine", "m2"), "effort_share"] == pytest.approx(400 / 1600)
+    assert mix.loc[("trap", "set"), "effort_share"] == 1.0  # alone in its unit
+
+
+def test_fitted_trend_curves_match_statsmodels(gear_switch):
+    # Reference library: statsmodels GLM (Poisson family, log link) fitted values on the same index.
+    res = trend(gear_switch, draws=100, seed=1)
+    for sp in SPECIES:
+        d = res.series[res.series["species"] == sp].sort_values("year")
+        X = sm.add_constant(d["year"].to_numpy(dtype=float) - 2008.5)
+        for col, fit_col in (("estimate", "harmonized_fit"), ("raw_estimate", "raw_fit")):
+            ref = sm.GLM(d[col].to_numpy(), X, family=sm.families.Poisson()).fit(scale="X2")
+            assert np.allclose(d[fit_col].to_numpy(), ref.fittedvalues, rtol=1e-6)
+    # the series behind the trend is the combined index: its lower <= estimate <= upper
+    s = res.series
+    assert ((s["lower"] <= s["estimate"] * (1 + 1e-9)) & (s["estimate"] <= s["upper"] * (1 + 1e-9))).all()
+
+
+def test_partner_outputs_and_summary(partners):
+    a = partners.agreement
+    assert len(a) == len(SPECIES) and set(a["source"]) == {"creek_crew"} and set(a["other_source"]) == {"dock_trawl"}
+    assert (a["n_years"] == len(YEARS)).all() and set(a["agreement"]) <= {"agree", "differ"}
+    ss = partners.source_series
+    assert set(ss["source"]) == {"creek_crew", "dock_trawl"}
+    assert len(ss) == 2 * len(SPECIES) * len(YEARS)
+    text = partners.summary()
+    assert "Do the partners agree once converted?" in text and "creek_crew" in text
+
+
+def test_partner_agreement_holds_with_right_factors_and_fails_with_wrong_ones(tmp_path):
+    # Recovering known values from simulated data: both sources sample the same declining
+    # animals, one switched gear in 2009. With the true factors the 90% interval of the
+    # difference of changes should cover 0 about 90% of the time; converted with factors of 1
+    # (theta 0, |true theta| 0.5-0.9) the switching source keeps its step and should "differ".
+    # 8 replicate surveys x 4 species = 32 comparisons each. Measured (2026-12-02, 12 replicates):
+    # agree 0.90 with the right factors, differ 0.94 with the wrong ones. Power of the bounds
+    # (scipy.stats.binom): P(agree < 24 of 32 | rate 0.9) = 0.003; P(differ >= 24 | rate 0.5) = 0.004.
+    agree, differ = [], []
+    for k in range(8):
+        right = trend(two_partners(tmp_path / f"r{k}", seed=100 + k), draws=300, seed=k)
+        agree += list(right.agreement["agreement"] == "agree")
+        wrong = trend(two_partners(tmp_path / f"w{k}", theta_used={s: 0.0 for s in SPECIES}, seed=100 + k),
+                      draws=300, seed=k)
+        differ += list(wrong.agreement["agreement"] == "differ")
+        # the step goes the way theta says: OTHER catches more of pinfish (theta > 0), so the
+        # unconverted switching source falls faster; less of blue crab (theta < 0), so it falls slower
+        a = wrong.agreement.set_index("species")
+        assert a.loc["pinfish", "difference_pct"] < 0 < a.loc["blue crab", "difference_pct"]
+    assert sum(agree) >= 24, f"right factors: {sum(agree)} of 32 agree"
+    assert sum(differ) >= 24, f"wrong factors: {sum(differ)} of 32 differ"
+
+
+def test_source_series_equals_the_series_of_that_source_alone(partners, tmp_path):
+    # The per-source series is the shared series estimator on that source's records: its point
+    # estimate of a reference-only source is the plain mean cpue of its hauls (no conversion).
+    conv = two_partners(tmp_path)
+    rec = conv.records
+    rec = rec[rec["source"] == "dock_trawl"]
+    plain = rec.groupby(["species", "year"], observed=True)["cpue"].mean()
+    ss = partners.source_series
+    got = ss[ss["source"] == "dock_trawl"].set_index(["species", "year"])["estimate"]
+    assert np.allclose(got.sort_index().to_numpy(), plain.sort_index().to_numpy())
+
+
+def test_trend_figures_are_drawn_from_the_tables(partners, tmp_path):
+    from calib import plots
+
+    for fig, n_axes in ((plots.plot_series_bands(partners.series), len(SPECIES)),
+                        (plots.plot_source_series(partners.source_series), len(SPECIES)),
+                        (plots.plot_artifact_bars(partners.table), 1),
+                        (plots.plot_gear_mix(partners.gear_mix), 2)):
+        assert sum(ax.get_visible() for ax in fig.axes) == n_axes
+        png = plots.figure_png(fig)
+        assert png[:8] == b"\x89PNG\r\n\x1a\n" and len(png) > 10_000
+    made = partners.save_figures(tmp_path / "figs")
+    assert sorted(p.name for p in made) == sorted(["raw_vs_harmonized.png", "artifact.png", "gear_mix.png",
+                                                   "source_series.png"])
+    assert all(p.stat().st_size > 10_000 for p in made)
