@@ -85,6 +85,10 @@ class ReportInputs:
     trend: pd.DataFrame | None = None
     trend_summary: str | None = None
     trend_manifest: dict | None = None
+    trend_series: pd.DataFrame | None = None  # the optional tables of a trend folder
+    gear_mix: pd.DataFrame | None = None
+    source_series: pd.DataFrame | None = None
+    agreement: pd.DataFrame | None = None
 
 
 def _missing(directory: Path, names, option: str, command: str) -> list[Problem]:
@@ -167,6 +171,10 @@ def read_results(factors, converted=None, series=None, trend=None) -> ReportInpu
         inputs.trend = _read_csv(tdir / "trend.csv", problems)
         inputs.trend_summary = (tdir / "summary.md").read_text()
         inputs.trend_manifest = _read_json(tdir / "manifest.json", problems)
+        for name, attr in (("trend_series.csv", "trend_series"), ("gear_mix.csv", "gear_mix"),
+                           ("source_series.csv", "source_series"), ("source_agreement.csv", "agreement")):
+            if (tdir / name).is_file():
+                setattr(inputs, attr, _read_csv(tdir / name, problems))
     if problems:
         raise InputError(problems)
     required = {"species", "gear", "factor_median", "factor_lower", "factor_upper", "status"}
@@ -336,9 +344,9 @@ def _section_inputs(r: ReportInputs) -> str:
                           + " (group counts need the input tables)."))
     gears = m.get("gears") or sorted(set(r.factors["gear"].astype(str)) | {str(m.get("reference"))})
     if len(gears) > 2 and combo_list and all(c.get("n_groups") is not None for c in combo_list):
-        from calib.plots import gear_network_figure
+        from calib.plots import plot_gear_network
 
-        out.append(_figure(gear_network_figure(combo_list, reference=m.get("reference")),
+        out.append(_figure(plot_gear_network(combo_list, reference=m.get("reference")),
                            "Gears that fished together: a line joins two gears that shared calibration groups, "
                            "labelled with the number of groups (a three-gear group counts for each pair). Gears "
                            "linked to the reference only through another gear get their factor through that chain.",
@@ -377,7 +385,7 @@ def _species_rows(table: pd.DataFrame) -> pd.DataFrame:
 
 
 def _section_factors(r: ReportInputs) -> str:
-    from calib.plots import forest_figure
+    from calib.plots import plot_forest
 
     m = r.manifest
     ref = m.get("reference")
@@ -389,7 +397,7 @@ def _section_factors(r: ReportInputs) -> str:
     counts = t["status"].value_counts()
     out.append(_p(f"{len(t)} factors: " + ", ".join(f"{int(counts.get(s, 0))} {s}" for s in ("ok", "warn", "fail"))
                   + "."))
-    out.append(_figure(forest_figure(t, reference=ref),
+    out.append(_figure(plot_forest(t, reference=ref),
                        f"Conversion factors to {ref}: median and {level} interval, log scale, colour = status.",
                        "forest plot of conversion factors"))
     t["interval_text"] = [f"{_num(lo)}\u00a0–\u00a0{_num(hi)}" for lo, hi in zip(t["factor_lower"], t["factor_upper"])]
@@ -404,7 +412,7 @@ def _section_factors(r: ReportInputs) -> str:
 
 
 def _section_checks(r: ReportInputs) -> str:
-    from calib.plots import convergence_figure, ppc_figure
+    from calib.plots import plot_convergence, plot_ppc
 
     m = r.manifest
     rules = m.get("status_rules") or {}
@@ -428,10 +436,10 @@ def _section_checks(r: ReportInputs) -> str:
                       numeric={"rhat": ".3f", "ess_bulk": ",.0f", "ess_tail": ",.0f", "prior_ratio": ".2f",
                                "ppp": ".2f"}))
     out.append(_p("prior ratio = posterior sd / prior sd of the log factor: near 1 means the data said little."))
-    out.append(_figure(convergence_figure(t, rules=rules),
+    out.append(_figure(plot_convergence(t, rules=rules),
                        "Sampler checks per factor: R-hat and effective sample sizes against the status thresholds.",
                        "R-hat and effective sample size per factor"))
-    out.append(_figure(ppc_figure(r.checks if not r.checks.empty else None, rules=rules),
+    out.append(_figure(plot_ppc(r.checks if not r.checks.empty else None, rules=rules),
                        "Posterior predictive check of the split of each group's catch among its gears: p-values "
                        "near 0 mean the observed splits vary more than the model allows, near 1 less.",
                        "posterior predictive p-values"))
@@ -452,64 +460,105 @@ def _section_length(r: ReportInputs) -> str:
     t = r.factors
     if "length_mm" not in t or not t["length_mm"].notna().any():
         return _p("Not fitted: this factor set has one factor per species and gear over all sizes.")
-    from calib.plots import length_factor_figure
+    from calib.plots import plot_factor_by_length
 
     rows = t[t["length_mm"].notna()]
     out = [_p(f"{len(rows)} factors by length class for {rows['species'].nunique()} species, only inside the "
               f"calibrated length range ({_num(rows['length_mm'].min())} to {_num(rows['length_mm'].max())} mm).")]
-    out.append(_figure(length_factor_figure(t, reference=r.manifest.get("reference")),
+    out.append(_figure(plot_factor_by_length(t, reference=r.manifest.get("reference")),
                        "Factor by length class: median and interval band per gear, log scale.",
                        "factor by length"))
     return "".join(out)
 
 
+def _level(frame: pd.DataFrame | None) -> str:
+    if frame is None or "interval" not in frame or not frame["interval"].notna().any():
+        return ""
+    return f"{100 * float(frame['interval'].dropna().iloc[0]):.0f}%"
+
+
 def _section_series(r: ReportInputs) -> str:
-    if r.series is None:
-        return _p("No series given (calib report --series DIR, from calib series).")
-    s = r.series
-    out = []
-    combined = s[s["stratum"].astype(str) == "all"] if "stratum" in s else s
-    level = f"{100 * float(s['interval'].dropna().iloc[0]):.0f}%" if "interval" in s and s["interval"].notna().any() else ""
-    out.append(_p(f"{combined['species'].nunique()} species, years {int(combined['year'].min())} to "
-                  f"{int(combined['year'].max())}: the harmonized series (reference-gear units, {level} interval "
-                  "carrying sampling and conversion error) beside the raw merged records."))
     from calib import plots
 
-    if hasattr(plots, "series_figure"):  # TEMPORARY until the lead's series figures are on main
-      out.append(_figure(plots.series_figure(s),
-                       f"Raw merged records and the harmonized series per species, with {level} bands.",
+    out = []
+    if r.series is not None and not r.series.empty:
+        s = r.series
+        combined = s[s["stratum"].astype(str) == "all"] if "stratum" in s else s
+        source = "calib series (series.csv, combined over strata)"
+    elif r.trend_series is not None and not r.trend_series.empty:
+        combined, source = r.trend_series, "calib trend (trend_series.csv)"
+    else:
+        return _p("No series given (calib report --series DIR, from calib series; or --trend DIR).")
+    level = _level(combined)
+    out.append(_p(f"{combined['species'].nunique()} species, years {int(combined['year'].min())} to "
+                  f"{int(combined['year'].max())}, from {source}: the harmonized series (reference-gear units, "
+                  f"{level} interval carrying sampling and conversion error) beside the raw merged records, on the "
+                  "same resamples."))
+    out.append(_figure(plots.plot_series_bands(combined),
+                       f"Raw merged records (amber) and the harmonized series (blue) per species, with {level} bands.",
                        "raw and harmonized series per species"))
     for note in (r.series_manifest or {}).get("notes", []):
         out.append(_note(note))
+    if r.gear_mix is not None and not r.gear_mix.empty:
+        out.append("<h3>Where the records come from</h3>")
+        out.append(_figure(plots.plot_gear_mix(r.gear_mix),
+                           "Share of hauls (and of effort) by gear, year by year: a change of gears shows here "
+                           "as a change of colours.", "gear mix by year"))
+    if r.source_series is not None and not r.source_series.empty:
+        out.append("<h3>Each partner dataset on its own</h3>")
+        out.append(_figure(plots.plot_source_series(r.source_series),
+                           "Harmonized series of each source with its band. Sources that sample different strata "
+                           "may differ in level for real; compare the shapes.", "harmonized series per source"))
     return "".join(out)
 
 
 def _section_trend(r: ReportInputs) -> str:
+    from calib import plots
+
     if r.trend is None:
         return _p("No trend attribution given (calib report --trend DIR, from calib trend).")
     t = r.trend.copy()
-    out = []
-    from calib import plots
-
-    if hasattr(plots, "artifact_figure"):  # TEMPORARY
-      out.append(_figure(plots.artifact_figure(t),
-                       "Change over the period: raw, harmonized and the part due to the change of gears, with "
-                       "intervals.", "trend attribution bars"))
+    out = [_figure(plots.plot_artifact_bars(t),
+                   "Change over the period per species: after harmonization (the animals) and the part due to the "
+                   "change of gears (the artifact), with intervals; the diamond is the raw merged change.",
+                   "trend attribution bars")]
 
     def span(v, lo, hi):
-        return f"{_num(v, 2)}% ({_num(lo, 2)} to {_num(hi, 2)})"
+        return f"{_signed(v)} ({_signed(lo)}\u00a0to\u00a0{_signed(hi)})"
 
-    t["raw"] = [f"{_num(v, 2)}%" for v in t["raw_change_pct"]]
+    t["raw"] = [_signed(v) for v in t["raw_change_pct"]]
     t["harm"] = [span(*x) for x in zip(t["harmonized_change_pct"], t["harmonized_change_lower"],
                                        t["harmonized_change_upper"])]
     t["art"] = [span(*x) for x in zip(t["artifact_pct"], t["artifact_lower"], t["artifact_upper"])]
-    out.append(_table(t, {"species": "species", "raw": "raw change", "harm": "harmonized change (interval)",
-                          "art": "due to gear change (interval)", "verdict": "verdict"}))
+    level = _level(t)
+    out.append(_table(t, {"species": "species", "year_from": "from", "year_to": "to", "raw": "raw change",
+                          "harm": f"harmonized change ({level} interval)",
+                          "art": f"due to the change of gears ({level} interval)", "verdict": "verdict"}))
     out.append("<h3>In plain words</h3>")
     lines = [ln.strip() for ln in (r.trend_summary or "").splitlines()]
     lines = [ln for ln in lines if ln and not ln.startswith("#")]
     out.append('<div class="plain">' + "".join(_p(ln) for ln in lines) + "</div>")
+    if r.agreement is not None and not r.agreement.empty:
+        a = r.agreement.copy()
+        a["diff"] = [span(*x) for x in zip(a["difference_pct"], a["difference_lower"], a["difference_upper"])]
+        out.append("<h3>Do the partner datasets agree?</h3>")
+        out.append(_p("Per species and pair of sources, the difference between their harmonized changes over the "
+                      "years both have; 'differ' means the interval excludes 0."))
+        out.append(_table(a, {"species": "species", "source": "source", "other_source": "other source",
+                              "year_from": "from", "year_to": "to", "diff": f"difference ({level} interval)",
+                              "agreement": "agreement", "reason": "why"}))
     return "".join(out)
+
+
+def _signed(value) -> str:
+    """A percent change with its sign (+12%, −5%); a dash when missing."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return "—"
+    if not np.isfinite(v):
+        return "—"
+    return f"{'+' if v > 0 else '−' if v < 0 else ''}{abs(v):.0f}%"
 
 
 def _section_cautions(r: ReportInputs) -> str:

@@ -7,6 +7,7 @@ skipped, with the reason printed, where chromium is absent.
 from __future__ import annotations
 
 import base64
+import html
 import io
 import json
 import re
@@ -108,34 +109,34 @@ def demo_results(demo_run):
 # ----------------------------------------------------------------------------- figures
 
 
-def test_forest_figure_shows_every_status_in_its_colour(demo_results):
+def test_forest_plot_shows_every_status_in_its_colour(demo_results):
     table = demo_results["factors"]
-    px = assert_drawn(plots.figure_png(plots.forest_figure(table, reference="otter_trawl_new")))
+    px = assert_drawn(plots.figure_png(plots.plot_forest(table, reference="otter_trawl_new")))
     for status in table["status"].unique():  # markers are drawn solid in the status colour
         assert has_colour(px, plots.STATUS_COLOURS[status]), status
 
 
 def test_convergence_and_ppc_figures_draw_the_demo_checks(demo_results):
     rules = demo_results["manifest"]["status_rules"]
-    assert_drawn(plots.figure_png(plots.convergence_figure(demo_results["factors"], rules=rules)))
-    px = assert_drawn(plots.figure_png(plots.ppc_figure(demo_results["checks"], rules=rules)))
+    assert_drawn(plots.figure_png(plots.plot_convergence(demo_results["factors"], rules=rules)))
+    px = assert_drawn(plots.figure_png(plots.plot_ppc(demo_results["checks"], rules=rules)))
     colours = plots.categorical_colours(sorted(demo_results["checks"]["gear"].unique()))
     for colour in colours.values():
         assert has_colour(px, colour)
 
 
-def test_gear_network_figure_from_the_demo_design(demo_results):
+def test_gear_network_from_the_demo_design(demo_results):
     summary, note = calibration_design(demo_results["manifest"])
     assert summary is not None, note
     combos = {" + ".join(c["gears"]): c["n_groups"] for c in summary.combos}
     # demo_paired_tows/README.md: 140 trawl pairs, 72 seine groups of which 8 also had the legacy trawl
     assert combos == {"otter_trawl_new + otter_trawl_old": 140, "beach_seine + otter_trawl_new": 64,
                       "beach_seine + otter_trawl_new + otter_trawl_old": 8}
-    px = assert_drawn(plots.figure_png(plots.gear_network_figure(summary.combos, reference="otter_trawl_new")))
+    px = assert_drawn(plots.figure_png(plots.plot_gear_network(summary.combos, reference="otter_trawl_new")))
     assert has_colour(px, plots.HARMONIZED)  # the reference gear, drawn filled
 
 
-def test_length_factor_figure(demo_results):
+def test_factor_by_length_figure(demo_results):
     """The demo factor set has no length classes: the figure is drawn on three species' demo factors
     spread over four length classes (a made-up shape; only the drawing is tested here)."""
     table = demo_results["factors"]
@@ -147,9 +148,9 @@ def test_length_factor_figure(demo_results):
         for col in ("factor_median", "factor_lower", "factor_upper"):
             part[col] = part[col] * (1 + length / 200)
         rows.append(part)
-    px = assert_drawn(plots.figure_png(plots.length_factor_figure(pd.concat(rows), reference="otter_trawl_new")))
+    px = assert_drawn(plots.figure_png(plots.plot_factor_by_length(pd.concat(rows), reference="otter_trawl_new")))
     assert has_colour(px, plots.CATEGORICAL[0])
-    empty = plots.figure_png(plots.length_factor_figure(table))  # no length rows: says so
+    empty = plots.figure_png(plots.plot_factor_by_length(table))  # no length rows: says so
     assert_drawn(empty, min_ink=0.001)
 
 
@@ -164,7 +165,8 @@ def test_demo_report_is_self_contained_with_every_section(demo_run):
     assert [h.strip() for h in page.h2] == [h for _, h in SECTIONS]
     assert page.external == []  # nothing to fetch: no links, scripts or images from elsewhere
     assert "script" not in page.tags and "link" not in page.tags
-    assert len(page.images) >= 5  # network, forest, convergence, ppc, series, trend
+    # network, forest, convergence, ppc, series bands, gear mix, per-source series, artifact bars
+    assert len(page.images) == 8
     for img in page.images:
         assert img["src"].startswith("data:image/png;base64,")
         assert_drawn(base64.b64decode(img["src"].split(",", 1)[1]), min_ink=0.001)
@@ -172,8 +174,11 @@ def test_demo_report_is_self_contained_with_every_section(demo_run):
     assert "@media print" in text
     manifest = json.loads((demo_run["out"] / "factors" / "manifest.json").read_text())
     assert manifest["factor_set_id"] in text
-    for sentence in (demo_run["out"] / "trend" / "summary.md").read_text().splitlines()[3:6]:
-        assert sentence.strip() and sentence.strip().replace("'", "&#x27;") in text
+    sentences = [ln.strip() for ln in (demo_run["out"] / "trend" / "summary.md").read_text().splitlines()
+                 if "Verdict:" in ln]
+    assert len(sentences) == 12  # one per demo species, each in the report's plain-words part
+    for sentence in sentences:
+        assert html.escape(sentence) in text
     assert "No model comparison was run" in text and "Not fitted" in text
 
 
