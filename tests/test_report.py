@@ -210,12 +210,20 @@ def test_report_escapes_file_text_and_shows_length_and_comparison(demo_run, tmp_
 
 
 def test_report_command(demo_run, tmp_path, capsys):
+    """calib report writes the file and says where; a factor set whose input tables changed since
+    the fit is reported with the design the fit recorded, and says so."""
     out_dir = demo_run["out"]
+    fdir = _copy_factor_set(out_dir / "factors", tmp_path / "factors")
+    manifest = json.loads((fdir / "manifest.json").read_text())
+    manifest["inputs"]["hauls"]["sha256"] = "0" * 64  # as if hauls.csv had been edited after the fit
+    (fdir / "manifest.json").write_text(json.dumps(manifest))
     target = tmp_path / "sub" / "report.html"
-    code = main(["report", "--factors", str(out_dir / "factors"), "--converted", str(out_dir / "converted"),
-                 "--out", str(target)])
+    code = main(["report", "--factors", str(fdir), "--converted", str(out_dir / "converted"), "--out", str(target)])
     assert code == 0 and target.is_file()
     assert str(target) in capsys.readouterr().out
+    text = target.read_text()
+    assert "hauls changed since" in text and "the design below is what the fit recorded" in text
+    assert "n groups" in text and "212" in text  # the fit's own count of calibration groups
     # A folder that is not a factor set: exit 1, the message names the file and the fix, nothing written.
     bad = tmp_path / "bad.html"
     code = main(["report", "--factors", str(out_dir / "series"), "--out", str(bad)])
