@@ -420,13 +420,7 @@ def _section_checks(r: ReportInputs) -> str:
     if m.get("divergences") is not None:
         out.append(_p(f"Divergent transitions in the fit: {m['divergences']}."))
     if rules:
-        out.append(_p("Status rules: fail when R-hat > {fail_rhat}, bulk ESS < {fail_ess_bulk:g}, the gear never "
-                      "caught the species, or prior_ratio > {fail_prior_ratio}; warn when R-hat > {warn_rhat}, bulk "
-                      "or tail ESS < {warn_ess:g}, any divergence, or the posterior predictive p-value is outside "
-                      "{ppp_low}–{ppp_high}.".format(**{**{"fail_rhat": "?", "fail_ess_bulk": float("nan"),
-                                                         "fail_prior_ratio": "?", "warn_rhat": "?",
-                                                         "warn_ess": float("nan"), "ppp_low": "?", "ppp_high": "?"},
-                                                      **rules})))
+        out.append(_p(_rules_text(rules)))
     t = _species_rows(r.factors).copy()
     if not r.checks.empty and "ppp" in r.checks:
         t = t.merge(r.checks[["gear", "species", "ppp"]], on=["gear", "species"], how="left")
@@ -454,6 +448,20 @@ def _section_checks(r: ReportInputs) -> str:
         out.append(_p("No model comparison was run for this factor set (no "
                       + " / ".join(COMPARISON_FILES) + " in its folder)."))
     return "".join(out)
+
+
+RULES_TEXT = ("Status rules: fail when R-hat > {fail_rhat:g}, bulk ESS < {fail_ess_bulk:g}, the gear never caught the "
+              "species, or prior ratio > {fail_prior_ratio:g}; warn when R-hat > {warn_rhat:g}, bulk or tail ESS < "
+              "{warn_ess:g}, any divergence, or the posterior predictive p-value is outside {ppp_low:g}–{ppp_high:g}.")
+
+
+def _rules_text(rules: dict) -> str:
+    """The status rules of a fit in words (as recorded in its manifest)."""
+    try:
+        text = RULES_TEXT.format(**{k: float(v) for k, v in rules.items() if k != "warn_on_divergences"})
+        return text if rules.get("warn_on_divergences", True) else text.replace(", any divergence", "")
+    except (KeyError, TypeError, ValueError):  # rules from another version: list them as they are
+        return "Status rules: " + ", ".join(f"{k} = {v}" for k, v in rules.items()) + "."
 
 
 def _section_length(r: ReportInputs) -> str:
