@@ -294,11 +294,28 @@ def calibration_design(manifest: dict):
     from calib.inspect import summarize
     from calib.tables import load_tables
 
+    # The lengths table does not change the design; only its row count is shown, so it is not
+    # validated again here (the fit did that), which keeps the report quick.
     try:
-        tables = load_tables(*(files[r]["path"] if r in files else None for r in roles))
-        return summarize(tables, reference=manifest.get("reference")), ""
+        tables = load_tables(*(files[r]["path"] if r in files and r != "lengths" else None for r in roles))
+        summary = summarize(tables, reference=manifest.get("reference"))
     except InputError as err:  # cannot happen for files a fit accepted, unless the rules changed
         return None, f"the input tables could not be read again ({err.problems[0]})"
+    if "lengths" in files:
+        summary.n_length_rows = _count_rows(files["lengths"]["path"])
+        summary.notes = [n for n in summary.notes if not n.startswith("no lengths table")]
+    return summary, ""
+
+
+def _count_rows(path) -> int:
+    """Data rows of a CSV (lines after the header, blank lines excluded) or Parquet file."""
+    path = Path(path)
+    if path.suffix.lower() in (".parquet", ".pq"):
+        import pyarrow.parquet as pq
+
+        return int(pq.ParquetFile(path).metadata.num_rows)
+    with open(path, "rb") as fh:
+        return max(sum(1 for line in fh if line.strip(b" ,\r\n")) - 1, 0)
 
 
 def _section_inputs(r: ReportInputs) -> str:

@@ -199,8 +199,12 @@ def test_report_escapes_file_text_and_shows_length_and_comparison(demo_run, tmp_
     pd.concat([table, length_rows]).to_csv(fdir / "factors.csv", index=False)
     pd.DataFrame({"model": ["gamma", "lognormal"], "elpd_loo": [-1234.5, -1240.1], "elpd_diff": [0.0, 5.6],
                   "dse": [0.0, 2.1]}).to_csv(fdir / "comparison.csv", index=False)
+    manifest = json.loads((fdir / "manifest.json").read_text())
+    del manifest["inputs"]  # a factor set that names no input tables: the design is what the fit recorded
+    (fdir / "manifest.json").write_text(json.dumps(manifest))
     out = write_report(tmp_path / "r.html", fdir)
     text = out.read_text()
+    assert "the fit&#x27;s manifest names no input tables" in text
     assert evil not in text and "&lt;script&gt;alert(&#x27;x&#x27;)&lt;/script&gt; &amp; co" in text
     assert "<script" not in text
     assert "lognormal" in text and "-1,240" in text and "No model comparison was run" not in text
