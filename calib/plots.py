@@ -107,7 +107,10 @@ def _pct_axis(ax, values) -> None:
     lo, hi = min(lo, 0.9), max(hi, 1.1)
     ax.set_xscale("log")
     ax.set_xlim(lo / 1.15, hi * 1.15)
-    candidates = np.array([-99, -95, -90, -80, -60, -40, -20, 0, 25, 50, 100, 200, 400, 900, 1900, 4900])
+    # ticks about evenly spaced on the log-ratio axis: coarser steps when the range is wide
+    wide = np.log(hi / lo) > 2.0
+    candidates = (np.array([-99, -95, -90, -75, -50, 0, 100, 300, 900, 1900, 4900]) if wide
+                  else np.array([-90, -80, -60, -40, -20, 0, 25, 50, 100, 200, 400]))
     ticks = [c for c in candidates if lo / 1.15 <= 1 + c / 100 <= hi * 1.15]
     ax.xaxis.set_major_locator(FixedLocator([1 + t / 100 for t in ticks]))
     ax.xaxis.set_minor_locator(NullLocator())
@@ -195,9 +198,9 @@ def plot_artifact_bars(trend_table):
                Patch(color=ARTIFACT, label="method artifact (change of gears)"),
                Line2D([], [], marker="D", color=RAW, markeredgecolor=INK, linestyle="none",
                       label="raw merged change")]
-    ax.legend(handles=handles, fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.16),
+    ax.legend(handles=handles, fontsize=7, frameon=False, loc="lower center", bbox_to_anchor=(0.5, 1.0),
               ncols=3, title=f"whiskers: {level} intervals", title_fontsize=6)
-    ax.set_title("How much of each change is the change of methods?", fontsize=10)
+    plt_fig.suptitle("How much of each change is the change of methods?", fontsize=10)
     return plt_fig
 
 

@@ -246,19 +246,24 @@ class TrendResult:
                 + f" ({100 * moved:.0f}% of the hauls changed gear between the two years)."]
 
     def agreement_sentences(self) -> list[str]:
-        """One sentence per species and pair of sources: do their harmonized series change alike?"""
+        """One sentence per species: which pairs of sources change alike once converted, with the
+        numbers of those that differ (every pair is in source_agreement.csv)."""
         level = int(round(100 * self.manifest["settings"]["interval"]))
         out = []
-        for r in self.agreement.itertuples():
-            name = str(r.species)
-            name = name[:1].upper() + name[1:]
-            if r.agreement == "not comparable":
-                out.append(f"{name}: {r.source} and {r.other_source} cannot be compared ({r.reason}).")
+        for sp, rows in self.agreement.groupby("species", sort=True):
+            name = str(sp)[:1].upper() + str(sp)[1:]
+            comparable = rows[rows["agreement"] != "not comparable"]
+            differ = comparable[comparable["agreement"] == "differ"]
+            if comparable.empty:
+                out.append(f"{name}: no two sources share {MIN_SHARED_YEARS} years with a catch; nothing to compare.")
                 continue
-            out.append(f"{name}: after harmonization {r.source} changes {_signed(r.source_change_pct)} and "
-                       f"{r.other_source} {_signed(r.other_change_pct)} over {r.year_from}-{r.year_to}; the "
-                       f"difference is {_signed(r.difference_pct)} ({level}% interval {_signed(r.difference_lower)} "
-                       f"to {_signed(r.difference_upper)}): they {r.agreement}.")
+            text = f"{name}: {len(comparable) - len(differ)} of {len(comparable)} pairs of sources agree once converted"
+            if len(differ):
+                text += "; " + "; ".join(
+                    f"{r.source} and {r.other_source} differ by {_signed(r.difference_pct)} over {r.year_from}-"
+                    f"{r.year_to} ({level}% interval {_signed(r.difference_lower)} to {_signed(r.difference_upper)})"
+                    for r in differ.itertuples())
+            out.append(text + ".")
         return out
 
     def summary(self) -> str:
@@ -524,13 +529,14 @@ def _trend_series(sd, table: pd.DataFrame, in_window: np.ndarray, interval: floa
 
 # ----------------------------------------------------------------------------- gear mix and partners
 
+MIN_SHARED_YEARS = 5  # two sources' changes are compared over at least this many years (common practice, no source)
 HAUL_COLUMNS = ("haul_id", "effort", "source")  # read from converted records beside the series columns
 NO_SOURCE = "(no source)"  # label of records whose source is blank
 AGREEMENT_RULE = (
     "per species and pair of sources, the log-linear slopes of their harmonized series over the years both "
-    "have a value (at least 3), draw by draw; 'agree' when the interval of "
-    "the difference of changes covers 0, 'differ' when it excludes 0, 'not comparable' when fewer than 3 "
-    "shared years or no finite slope"
+    f"have a value (at least {MIN_SHARED_YEARS}), draw by draw; 'agree' when the interval of "
+    f"the difference of changes covers 0, 'differ' when it excludes 0, 'not comparable' when fewer than "
+    f"{MIN_SHARED_YEARS} shared years or no finite slope"
 )
 
 
@@ -679,9 +685,9 @@ def _agreement_row(sp, a, b, sd_a, sd_b, year_from, year_to, interval, lo_q, hi_
                                                          & (sd.table["stratum"] != ALL), "stratum"]}
     row["shared_strata"] = ";".join(sorted(strata_of(sd_a) & strata_of(sd_b)))
     row["n_years"] = len(shared)
-    if len(shared) < MIN_YEARS:
+    if len(shared) < MIN_SHARED_YEARS:
         row.update(agreement="not comparable",
-                   reason=f"{len(shared)} year(s) with a value from both; a comparison needs {MIN_YEARS}")
+                   reason=f"{len(shared)} year(s) with a value from both; a comparison needs {MIN_SHARED_YEARS}")
         return row
     row["year_from"], row["year_to"] = int(shared.min()), int(shared.max())
     span = float(shared.max() - shared.min())

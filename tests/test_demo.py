@@ -83,3 +83,18 @@ def test_demo_attributes_trends(demo_run):
     assert (demo_run["out"] / "trend" / "summary.md").read_text().strip()
     flounder = table.set_index("species").loc["southern flounder"]
     assert flounder["harmonized_change_upper"] < 0
+
+
+def test_demo_shows_gear_mix_and_partners(demo_run):
+    trend_dir = demo_run["out"] / "trend"
+    mix = pd.read_csv(trend_dir / "gear_mix.csv")
+    assert np.allclose(mix.groupby("year")["haul_share"].sum(), 1.0)
+    # the channel survey's switch (demo_paired_tows/README.md): no legacy trawl after 2014
+    assert mix.loc[mix["year"] > 2014, "gear"].ne("otter_trawl_old").all()
+    sources = set(pd.read_csv(trend_dir / "source_series.csv")["source"])
+    assert {"channel_trawl_survey", "shore_seine_survey", "tidal_creek_survey"} <= sources
+    agreement = pd.read_csv(trend_dir / "source_agreement.csv")
+    assert set(agreement["agreement"]) <= {"agree", "differ", "not comparable"}
+    for name in ("raw_vs_harmonized.png", "artifact.png", "gear_mix.png", "source_series.png"):
+        assert (trend_dir / "figures" / name).stat().st_size > 10_000
+    assert "pairs of sources agree once converted" in demo_run["printed"]

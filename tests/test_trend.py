@@ -325,7 +325,7 @@ def test_partner_outputs_and_summary(partners):
     assert set(ss["source"]) == {"creek_crew", "dock_trawl"}
     assert len(ss) == 2 * len(SPECIES) * len(YEARS)
     text = partners.summary()
-    assert "Do the partners agree once converted?" in text and "creek_crew" in text
+    assert "Do the partners agree once converted?" in text and "pairs of sources agree once converted" in text
 
 
 def test_partner_agreement_holds_with_right_factors_and_fails_with_wrong_ones(tmp_path):
