@@ -46,3 +46,16 @@ def test_console_script_prints_the_same_help():
                           env=env, timeout=60)
     assert done.returncode == 0
     assert done.stdout.rstrip("\n") in (PAGES / "report.md").read_text()
+
+
+def test_validation_page_names_only_tests_that_exist():
+    """docs/validation.md points at real tests: every `tests/file.py::test_name` it cites is defined."""
+    import re
+
+    root = PAGES.parent.parent
+    page = (root / "docs" / "validation.md").read_text()
+    cited = re.findall(r"`(tests/test_\w+\.py)::(test_\w+)`", page)
+    assert len(cited) >= 30
+    for file, name in cited:
+        source = (root / file).read_text()
+        assert re.search(rf"^def {name}\(", source, re.M), f"docs/validation.md cites {file}::{name}, which is gone"
