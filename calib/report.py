@@ -441,19 +441,29 @@ def _section_checks(r: ReportInputs) -> str:
     t = _species_rows(r.factors).copy()
     if not r.checks.empty and "ppp" in r.checks:
         t = t.merge(r.checks[["gear", "species", "ppp"]], on=["gear", "species"], how="left")
-    columns = {"species": "species", "gear": "gear", "rhat": "R-hat", "ess_bulk": "bulk ESS", "ess_tail": "tail ESS",
-               "prior_ratio": "prior ratio", "ppp": "predictive p", "status": "status"}
-    out.append(_table(t, {k: v for k, v in columns.items() if k in t}, status_column="status",
-                      numeric={"rhat": ".3f", "ess_bulk": ",.0f", "ess_tail": ",.0f", "prior_ratio": ".2f",
-                               "ppp": ".2f"}))
-    out.append(_p("prior ratio = posterior sd / prior sd of the log factor: near 1 means the data said little."))
-    out.append(_figure(plot_convergence(t, rules=rules),
-                       "Sampler checks per factor: R-hat and effective sample sizes against the status thresholds.",
-                       "R-hat and effective sample size per factor"))
-    out.append(_figure(plot_ppc(r.checks if not r.checks.empty else None, rules=rules),
-                       "Posterior predictive check of the split of each group's catch among its gears: p-values "
-                       "near 0 mean the observed splits vary more than the model allows, near 1 less.",
-                       "posterior predictive p-values"))
+    sampled = "rhat" in t and pd.to_numeric(t["rhat"], errors="coerce").notna().any()
+    predicted = "ppp" in t and pd.to_numeric(t["ppp"], errors="coerce").notna().any()
+    if sampled or predicted:
+        columns = {"species": "species", "gear": "gear", "rhat": "R-hat", "ess_bulk": "bulk ESS",
+                   "ess_tail": "tail ESS", "prior_ratio": "prior ratio", "ppp": "predictive p", "status": "status"}
+        out.append(_table(t, {k: v for k, v in columns.items() if k in t}, status_column="status",
+                          numeric={"rhat": ".3f", "ess_bulk": ",.0f", "ess_tail": ",.0f", "prior_ratio": ".2f",
+                                   "ppp": ".2f"}))
+        out.append(_p("prior ratio = posterior sd / prior sd of the log factor: near 1 means the data said little."))
+    if sampled:
+        out.append(_figure(plot_convergence(t, rules=rules),
+                           "Sampler checks per factor: R-hat and effective sample sizes against the status thresholds.",
+                           "R-hat and effective sample size per factor"))
+    else:
+        out.append(_p(f"No sampler diagnostics: this factor set was made by the {m.get('method', '?')} method, "
+                      "without a sampler (R-hat and ESS do not apply)."))
+    if predicted:
+        out.append(_figure(plot_ppc(r.checks, rules=rules),
+                           "Posterior predictive check of the split of each group's catch among its gears: p-values "
+                           "near 0 mean the observed splits vary more than the model allows, near 1 less.",
+                           "posterior predictive p-values"))
+    else:
+        out.append(_p("No posterior predictive check in this factor set."))
     out.append("<h3>Model comparison (LOO)</h3>")
     if r.comparison is not None and not r.comparison.empty:
         comp = r.comparison

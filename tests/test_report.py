@@ -306,3 +306,23 @@ def test_report_renders_in_a_real_browser(demo_run, tmp_path):
     assert attrs.get("data-broken", "").split() == ["probe-broken"]  # only the deliberately broken one
     headings = [h.strip() for h in parse(dom.stdout).h2]
     assert headings == [h for _, h in SECTIONS]
+
+
+def test_report_of_a_factor_set_made_without_a_sampler(tmp_path):
+    """A factor set from known draws (no sampler, no predictive check, blank summaries, no input
+    tables): every section is still there and says what does not apply."""
+    import xarray as xr
+
+    from calib.factors import factor_set_from_draws
+
+    rng = np.random.default_rng(5)
+    theta = np.zeros((1, 200, 2, 2))
+    theta[0, :, 1, :] = [-0.4, 0.7] + 0.1 * rng.standard_normal((200, 2))
+    draws = xr.DataArray(theta, dims=("chain", "draw", "gear", "species"),
+                         coords={"gear": ["ref_trawl", "<b>seine</b>"], "species": ["pinfish", "blue crab"]})
+    fdir = factor_set_from_draws(draws, reference="ref_trawl", factor_set_id="fs-test").save(tmp_path / "f")
+    text = write_report(tmp_path / "r.html", fdir).read_text()
+    assert [h.strip() for h in parse(text).h2] == [h for _, h in SECTIONS]
+    assert "No sampler diagnostics: this factor set was made by the synthetic method" in text
+    assert "No posterior predictive check" in text
+    assert "&lt;b&gt;seine&lt;/b&gt;" in text and "<b>seine" not in text
