@@ -23,6 +23,7 @@ units with the uncertainty carried along, builds harmonized series, says how
 much of a trend is the change of gears, and writes a report.
 
 Typical order:  calib check  ->  calib fit  ->  convert  ->  series / trend  ->  report
+Before a calibration study:  calib plan (how many pairs are needed)
 Try it on invented data first:  calib demo --out demo_output
 """
 
@@ -139,6 +140,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_trend_parser(sub, formatter_class=_Formatter)
 
+    from calib.plan import add_plan_parser
+
+    add_plan_parser(sub, formatter_class=_Formatter)
+
     from calib.report import add_report_parser
 
     add_report_parser(sub, formatter_class=_Formatter)
@@ -147,10 +152,10 @@ def build_parser() -> argparse.ArgumentParser:
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
         description=textwrap.dedent("""\
-            Run check, fit, convert, series, trend and report on the bundled demo data (an
-            invented estuary with three partner programs, a legacy and a new otter trawl, and
-            a beach seine) and print what was found and where the files are, ending with the
-            HTML report. Takes a few minutes on 2 cores."""),
+            Run check, fit, convert, series, trend, a small study plan and the report on
+            the bundled demo data (an invented estuary with three partner programs, a legacy
+            and a new otter trawl, and a beach seine) and print what was found and where the
+            files are, ending with the HTML report. Takes a few minutes on 2 cores."""),
     )
     p.add_argument("--out", required=True, metavar="DIR", help="directory for all demo outputs")
     p.add_argument("--draws", type=int, default=1000, help="posterior draws per chain")
@@ -238,6 +243,12 @@ def _cmd_trend(args) -> int:
     return run_trend_command(args)
 
 
+def _cmd_plan(args) -> int:
+    from calib.plan import run_plan_command
+
+    return run_plan_command(args)
+
+
 def _cmd_report(args) -> int:
     from calib.report import run_report_command
 
@@ -263,7 +274,7 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
 
 
 COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
-            "trend": _cmd_trend, "report": _cmd_report, "demo": _cmd_demo}
+            "trend": _cmd_trend, "plan": _cmd_plan, "report": _cmd_report, "demo": _cmd_demo}
 
 
 HELP_WIDTH = 88  # columns of the generated help pages (docs/commands), whatever the terminal

@@ -11,6 +11,9 @@ import time
 from pathlib import Path
 
 DEMO_FILES = ("hauls.csv", "catches.csv", "lengths.csv")
+# The planning example: a few species of the seine-trawl groups (a few seconds of simulation).
+PLAN_GEAR = "beach_seine"
+PLAN_SPECIES = ("pinfish", "blue crab", "southern flounder")
 
 
 def demo_data_dir(out: Path) -> Path:
@@ -27,7 +30,8 @@ def demo_data_dir(out: Path) -> Path:
 
 def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
              progressbar: bool = True) -> dict:
-    """Run check, fit, convert, series, trend and report on the demo data; print findings and where the files are.
+    """Run check, fit, convert, series, trend, a small study plan and the report on the demo data; print
+    findings and where the files are.
 
     Returns a dict of the output paths and the FactorSet (for tests and notebooks).
     """
@@ -77,6 +81,18 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     trend_dir = trend_result.save(out / "trend")
     print(trend_result.summary())
 
+    from calib.plan import PlanTarget, expected_catch_from_factors, kappa_from_factors, plan
+
+    print("\n== Planning a further seine calibration: how many seine-trawl groups?\n")
+    wanted = [s for s in PLAN_SPECIES if s in set(factor_set.table["species"])]
+    inputs = expected_catch_from_factors(factor_set)
+    inputs = inputs[(inputs["gear"] == PLAN_GEAR) & inputs["species"].isin(wanted)]
+    plan_result = plan(inputs, PlanTarget(), kappa_table=kappa_from_factors(factor_set), n_studies=100,
+                       full_fit=False, seed=seed, progressbar=progressbar, input_paths=[factors_dir])
+    plan_dir = plan_result.save(out / "plan")
+    print(plan_result.summary())
+    print("  (The demo skips the check of the fast fit against a full Bayesian fit; `calib plan` runs it.)")
+
     from calib.report import write_report
 
     report_path = write_report(out / "report.html", factors_dir, converted=converted_dir, series=series_dir,
@@ -98,9 +114,11 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
           "source_series.csv, source_agreement.csv, trend_draws.parquet, manifest.json)")
     print(f"  figures:        {trend_dir / 'figures'}/ (raw_vs_harmonized.png, artifact.png, gear_mix.png, "
           "source_series.png)")
+    print(f"  study plan:     {plan_dir}/ (plan.csv, curve.csv, plan_curves.png, plan.md, manifest.json)")
     print(f"  report:         {report_path}  (open it in a web browser)")
     print(f"\nDone in {elapsed:.0f} s. The report: {report_path}")
     return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,
             "converted_dir": converted_dir, "conversion": conversion,
             "series_dir": series_dir, "series": series_result,
-            "trend_dir": trend_dir, "trend": trend_result, "report": report_path}
+            "trend_dir": trend_dir, "trend": trend_result, "plan_dir": plan_dir, "plan": plan_result,
+            "report": report_path}

@@ -263,6 +263,64 @@ def plot_source_series(source_table, species=None, ncols: int = 3):
     if names:
         axes[0].legend(fontsize=6, frameon=False, loc="upper left")
     fig.suptitle("Harmonized series of each partner dataset", fontsize=10)
+# --- study planning
+
+
+def plan_curves_figure(curve, table, *, target: dict | None = None, ncols: int = 3):
+    """Interval width against the number of calibration groups, one panel per species x gear.
+
+    curve : ``calib.plan`` curve table (species, gear, n_groups, width_median, width_low,
+        width_high): the half-width factor exp(z se) of the factor's interval (upper / median),
+        median and 10%-90% range over the simulated studies.
+    table : ``calib.plan`` plan table (species, gear, groups_needed, mc_lower, mc_upper, verdict).
+    target : the PlanTarget as a dict (kind, width_factor, ...); a width target is drawn as a
+        horizontal line.
+
+    Draws only what the tables hold; returns a matplotlib Figure.
+    """
+    import math
+
+    from matplotlib.ticker import FuncFormatter
+
+    keys = list(dict.fromkeys(zip(curve["species"], curve["gear"])))
+    fig, axes = new_figure(max(1, len(keys)), ncols=ncols, panel_size=(3.4, 2.6))
+    if not keys:
+        axes[0].text(0.5, 0.5, "no species could be simulated", ha="center", va="center", color=NEUTRAL,
+                     transform=axes[0].transAxes)
+        return fig
+    plan_rows = {(r.species, r.gear): r for r in table.itertuples()}
+    for ax, (species, gear) in zip(axes, keys):
+        c = curve[(curve["species"] == species) & (curve["gear"] == gear)].sort_values("n_groups")
+        n = c["n_groups"].to_numpy(float)
+        high = np.minimum(c["width_high"].to_numpy(float), 1e3)  # inf (not estimable) drawn at the top
+        ax.fill_between(n, c["width_low"].to_numpy(float), high, color=HARMONIZED, alpha=0.18, linewidth=0,
+                        label="10-90% of studies")
+        ax.plot(n, np.minimum(c["width_median"].to_numpy(float), 1e3), color=HARMONIZED, linewidth=1.6,
+                label="median study")
+        if target and target.get("kind") == "width":
+            ax.axhline(target["width_factor"], color=INK, linewidth=0.8, linestyle="--", label="target")
+        row = plan_rows.get((species, gear))
+        if row is not None and math.isfinite(float(row.groups_needed)):
+            lo, hi = float(row.mc_lower), float(row.mc_upper)
+            if math.isfinite(lo) and math.isfinite(hi):
+                ax.axvspan(lo, hi, color=ARTIFACT, alpha=0.15, linewidth=0)
+            ax.axvline(float(row.groups_needed), color=ARTIFACT, linewidth=1.2,
+                       label=f"needed: {int(row.groups_needed)}")
+        elif row is not None:
+            ax.text(0.97, 0.92, str(row.verdict), ha="right", va="top", fontsize=8, color=STATUS_COLOURS["fail"],
+                    transform=ax.transAxes)
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        plain = FuncFormatter(lambda v, _pos: f"{v:g}")
+        for axis in (ax.xaxis, ax.yaxis):
+            axis.set_major_formatter(plain)
+            axis.set_minor_formatter(FuncFormatter(lambda v, _pos: f"{v:g}" if str(v)[0] in "25" else ""))
+        top = float(np.nanmax(np.minimum(c["width_high"].to_numpy(float), 1e3)))
+        ax.set_ylim(1.0, max(2.0, min(top * 1.1, 10.0)))
+        ax.set_title(f"{species} ({gear})", fontsize=9)
+        ax.set_xlabel("calibration groups (pairs)", fontsize=8)
+        ax.set_ylabel("interval end / median", fontsize=8)
+        ax.legend(fontsize=6, frameon=False, loc="upper right")
     return fig
 
 

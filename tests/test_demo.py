@@ -98,3 +98,19 @@ def test_demo_shows_gear_mix_and_partners(demo_run):
     for name in ("raw_vs_harmonized.png", "artifact.png", "gear_mix.png", "source_series.png"):
         assert (trend_dir / "figures" / name).stat().st_size > 10_000
     assert "pairs of sources agree once converted" in demo_run["printed"]
+
+
+def test_demo_includes_a_small_study_plan(demo_run):
+    """The demo plans a further seine calibration for a few species and says where the plan is."""
+    from calib.demo import PLAN_SPECIES
+    from calib.plan import PLAN_COLUMNS
+
+    plan_dir = demo_run["out"] / "plan"
+    for name in ("plan.csv", "curve.csv", "plan_curves.png", "plan.md", "manifest.json"):
+        assert (plan_dir / name).exists(), name
+    assert str(plan_dir) in demo_run["printed"]
+    table = pd.read_csv(plan_dir / "plan.csv")
+    assert list(table.columns) == PLAN_COLUMNS
+    assert set(table["species"]) == set(PLAN_SPECIES)
+    assert set(table["verdict"]) <= {"reachable", "at most the smallest size", "not reachable", "no catch"}
+    assert "Planning a further seine calibration" in demo_run["printed"]
