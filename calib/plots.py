@@ -263,6 +263,9 @@ def plot_source_series(source_table, species=None, ncols: int = 3):
     if names:
         axes[0].legend(fontsize=6, frameon=False, loc="upper left")
     fig.suptitle("Harmonized series of each partner dataset", fontsize=10)
+    return fig
+
+
 # --- study planning
 
 

@@ -274,11 +274,12 @@ def _chromium() -> str | None:
     return None
 
 
-def test_report_renders_in_a_real_browser(demo_run, tmp_path):
+def test_report_renders_in_a_real_browser(demo_run, tmp_path, capsys):
     browser = _chromium()
     if browser is None:
         reason = "chromium not installed (`.ci/run` installs Debian's chromium; apt-get install chromium)"
-        print(f"SKIPPED: {reason}")
+        with capsys.disabled():
+            print(f"\nSKIPPED: {reason}")
         pytest.skip(reason)
     ARTIFACTS.mkdir(exist_ok=True)
     text = Path(demo_run["report"]).read_text()
@@ -293,7 +294,8 @@ def test_report_renders_in_a_real_browser(demo_run, tmp_path):
 
     shot = run("--window-size=1280,4000", f"--screenshot={screenshot}", profile="shot")
     assert screenshot.is_file(), shot.stderr[-2000:]
-    print(f"\nscreenshot of the report: {screenshot}")
+    with capsys.disabled():  # shown in every run, not only with -s
+        print(f"\nscreenshot of the report (test artifact): {screenshot}")
     px = assert_drawn(screenshot.read_bytes())
     assert has_colour(px, plots.HARMONIZED)  # the header band
 
