@@ -350,13 +350,29 @@ def _species_level(table):
     return table
 
 
+def _check_rows(table):
+    """The rows whose sampler checks are drawn: species-level rows, else (a length factor set) all."""
+    rows = _species_level(table)
+    return rows if len(rows) else table
+
+
 def _factor_label(row) -> str:
     """Species, plus the covariate level when the factor is per level."""
     label = str(row["species"])
+    length = row.get("length_mm")
+    if length is not None and pd_notna(length):
+        label += f" {float(length):g} mm"
     covariate, level = row.get("covariate"), row.get("level")
     if isinstance(covariate, str) and covariate:
         label += f" [{covariate} = {level}]"
     return label
+
+
+def pd_notna(value) -> bool:
+    """True for a present value (not None, NaN or pandas NA)."""
+    import pandas as pd
+
+    return not bool(pd.isna(value))
 
 
 def _plain_log_axis(axis) -> None:
@@ -382,7 +398,7 @@ def plot_forest(table, *, reference: str | None = None):
     lines the ``interval`` (e.g. 90%) intervals, on a log scale (a factor of 2 and of 1/2
     lie equally far from 1); colour is the factor's status (``STATUS_COLOURS``). Factors
     that could not be estimated are listed as "not estimable". Length-class rows are left
-    out (see ``plot_factor_by_length``).
+    out (see ``plot_length_factor_bands``).
     """
     from matplotlib.lines import Line2D
 
@@ -435,7 +451,7 @@ def plot_convergence(table, *, rules: dict | None = None):
     from matplotlib.lines import Line2D
 
     rules = _rules(rules)
-    rows = _species_level(table)
+    rows = _check_rows(table)
     rows = rows[np.isfinite(rows["rhat"].astype(float))] if "rhat" in rows else rows.iloc[0:0]
     if rows.empty:
         return _empty_figure("No sampler diagnostics: this factor set was not fitted by a sampler.")
@@ -558,11 +574,13 @@ def plot_gear_network(combos, *, reference: str | None = None):
     return fig
 
 
-def plot_factor_by_length(table, *, reference: str | None = None):
-    """Factor by length class, one panel per species, a line and band per gear (log scale).
+def plot_length_factor_bands(table, *, reference: str | None = None):
+    """Factor by length class for the report, one panel per species, a line and band per gear (log scale).
 
     ``table``: a factors.csv frame; only rows with a ``length_mm`` value are drawn (the
-    calibrated length range). Bands are the ``interval`` intervals.
+    calibrated length range), at the classes' lower bounds. Bands are the ``interval`` intervals.
+    Without length rows the figure says so. (The length model's own figure, with class
+    mid-points and the truth for recovery checks, lives with that model.)
     """
     rows = table[table["length_mm"].notna()] if "length_mm" in table else table.iloc[0:0]
     if rows.empty:

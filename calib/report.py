@@ -396,7 +396,8 @@ def _combos_from_posterior(fdir: Path) -> list[str]:
 
 
 def _species_rows(table: pd.DataFrame) -> pd.DataFrame:
-    if "length_mm" in table:
+    """Species-level factors; for a factor set with length classes only, every row."""
+    if "length_mm" in table and table["length_mm"].isna().any():
         return table[table["length_mm"].isna()]
     return table
 
@@ -414,17 +415,24 @@ def _section_factors(r: ReportInputs) -> str:
     counts = t["status"].value_counts()
     out.append(_p(f"{len(t)} factors: " + ", ".join(f"{int(counts.get(s, 0))} {s}" for s in ("ok", "warn", "fail"))
                   + "."))
-    out.append(_figure(plot_forest(t, reference=ref),
-                       f"Conversion factors to {ref}: median and {level} interval, log scale, colour = status.",
-                       "forest plot of conversion factors"))
+    by_length_only = "length_mm" in t and t["length_mm"].notna().all() and len(t)
+    if by_length_only:
+        out.append(_p("This factor set holds factors by length class only: see Factor by length for the figure."))
+    else:
+        out.append(_figure(plot_forest(t, reference=ref),
+                           f"Conversion factors to {ref}: median and {level} interval, log scale, colour = status.",
+                           "forest plot of conversion factors"))
     t["interval_text"] = [f"{_num(lo)}\u00a0–\u00a0{_num(hi)}" for lo, hi in zip(t["factor_lower"], t["factor_upper"])]
-    columns = {"species": "species", "gear": "gear", "factor_median": "factor", "interval_text": f"{level} interval",
+    columns = {"species": "species", "gear": "gear", "length_mm": "length class (mm)", "factor_median": "factor",
+               "interval_text": f"{level} interval",
                "n_groups": "groups", "n_caught": "caught by gear", "status": "status", "reason": "why"}
     if "covariate" in t and t["covariate"].notna().any():
         columns = {"species": "species", "gear": "gear", "covariate": "covariate", "level": "level",
                    **{k: v for k, v in columns.items() if k not in ("species", "gear")}}
+    if not by_length_only:
+        columns.pop("length_mm")
     out.append(_table(t, {k: v for k, v in columns.items() if k in t}, status_column="status",
-                      numeric=("factor_median", "n_groups", "n_caught")))
+                      numeric=("factor_median", "length_mm", "n_groups", "n_caught")))
     return "".join(out)
 
 
@@ -495,12 +503,12 @@ def _section_length(r: ReportInputs) -> str:
     t = r.factors
     if "length_mm" not in t or not t["length_mm"].notna().any():
         return _p("Not fitted: this factor set has one factor per species and gear over all sizes.")
-    from calib.plots import plot_factor_by_length
+    from calib.plots import plot_length_factor_bands
 
     rows = t[t["length_mm"].notna()]
     out = [_p(f"{len(rows)} factors by length class for {rows['species'].nunique()} species, only inside the "
               f"calibrated length range ({_num(rows['length_mm'].min())} to {_num(rows['length_mm'].max())} mm).")]
-    out.append(_figure(plot_factor_by_length(t, reference=r.manifest.get("reference")),
+    out.append(_figure(plot_length_factor_bands(t, reference=r.manifest.get("reference")),
                        "Factor by length class: median and interval band per gear, log scale.",
                        "factor by length"))
     return "".join(out)

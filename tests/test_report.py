@@ -148,9 +148,9 @@ def test_factor_by_length_figure(demo_results):
         for col in ("factor_median", "factor_lower", "factor_upper"):
             part[col] = part[col] * (1 + length / 200)
         rows.append(part)
-    px = assert_drawn(plots.figure_png(plots.plot_factor_by_length(pd.concat(rows), reference="otter_trawl_new")))
+    px = assert_drawn(plots.figure_png(plots.plot_length_factor_bands(pd.concat(rows), reference="otter_trawl_new")))
     assert has_colour(px, plots.CATEGORICAL[0])
-    empty = plots.figure_png(plots.plot_factor_by_length(table))  # no length rows: says so
+    empty = plots.figure_png(plots.plot_length_factor_bands(table))  # no length rows: says so
     assert_drawn(empty, min_ink=0.001)
 
 
@@ -328,3 +328,20 @@ def test_report_of_a_factor_set_made_without_a_sampler(tmp_path):
     assert "No sampler diagnostics: this factor set was made by the synthetic method" in text
     assert "No posterior predictive check" in text
     assert "&lt;b&gt;seine&lt;/b&gt;" in text and "<b>seine" not in text
+
+
+def test_report_of_a_factor_set_with_length_classes_only(demo_run, tmp_path):
+    """A factor set whose factors.csv has only length-class rows (as a length fit writes): the
+    factors section lists them by class, and Factor by length draws them."""
+    fdir = _copy_factor_set(demo_run["out"] / "factors", tmp_path / "factors")
+    table = pd.read_csv(fdir / "factors.csv")
+    table = table[table["species"].isin(["pinfish", "blue crab"])]
+    table = pd.concat([table.assign(length_mm=float(mm)) for mm in (30, 40, 50)])
+    table.to_csv(fdir / "factors.csv", index=False)
+    manifest = json.loads((fdir / "manifest.json").read_text())
+    del manifest["inputs"]
+    (fdir / "manifest.json").write_text(json.dumps(manifest))
+    text = write_report(tmp_path / "r.html", fdir).read_text()
+    assert "factors by length class only" in text and "length class (mm)" in text
+    assert "12 factors by length class for 2 species" in text
+    assert 'alt="factor by length"' in text and 'alt="forest plot of conversion factors"' not in text
