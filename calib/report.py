@@ -290,7 +290,8 @@ def calibration_design(manifest: dict):
     states = {r: _input_state(files[r]) for r in roles if r in files}
     if any(s != "unchanged" for s in states.values()):
         which = ", ".join(f"{r} {s}" for r, s in states.items() if s != "unchanged")
-        return None, f"the input tables are not as they were at the fit ({which}); the design below is what the fit recorded"
+        return None, (f"the input tables are not as they were at the fit ({which}); "
+                      "the design below is what the fit recorded")
     from calib.inspect import summarize
     from calib.tables import load_tables
 
@@ -408,7 +409,7 @@ def _section_factors(r: ReportInputs) -> str:
     m = r.manifest
     ref = m.get("reference")
     t = _species_rows(r.factors).copy()
-    level = f"{100 * float(t['interval'].dropna().iloc[0]):.0f}%" if "interval" in t and t["interval"].notna().any() else ""
+    level = _level(t)
     out = [_p(f"factor × catch per unit effort of the gear = expected catch per unit effort of the reference gear "
               f"({ref}) at the same place and time. A factor above 1 means the gear catches less of that species "
               f"than the reference gear per unit effort.")]
@@ -422,7 +423,8 @@ def _section_factors(r: ReportInputs) -> str:
         out.append(_figure(plot_forest(t, reference=ref),
                            f"Conversion factors to {ref}: median and {level} interval, log scale, colour = status.",
                            "forest plot of conversion factors"))
-    t["interval_text"] = [f"{_num(lo)}\u00a0–\u00a0{_num(hi)}" for lo, hi in zip(t["factor_lower"], t["factor_upper"])]
+    t["interval_text"] = [f"{_num(lo)}\u00a0–\u00a0{_num(hi)}"
+                          for lo, hi in zip(t["factor_lower"], t["factor_upper"])]
     columns = {"species": "species", "gear": "gear", "length_mm": "length class (mm)", "factor_median": "factor",
                "interval_text": f"{level} interval",
                "n_groups": "groups", "n_caught": "caught by gear", "status": "status", "reason": "why"}
@@ -487,7 +489,8 @@ def _section_checks(r: ReportInputs) -> str:
 
 RULES_TEXT = ("Status rules: fail when R-hat > {fail_rhat:g}, bulk ESS < {fail_ess_bulk:g}, the gear never caught the "
               "species, or prior ratio > {fail_prior_ratio:g}; warn when R-hat > {warn_rhat:g}, bulk or tail ESS < "
-              "{warn_ess:g}, any divergence, or the posterior predictive p-value is outside {ppp_low:g}–{ppp_high:g}.")
+              "{warn_ess:g}, any divergence, or the posterior predictive p-value is outside "
+              "{ppp_low:g}–{ppp_high:g}.")
 
 
 def _rules_text(rules: dict) -> str:
@@ -611,8 +614,9 @@ def _section_cautions(r: ReportInputs) -> str:
 def _section_manifest(r: ReportInputs) -> str:
     out = [_p("Everything needed to trace these results: input hashes, model, priors, settings, seeds and "
               "software versions, as written by each command.")]
-    for label, manifest in (("factor set (calib fit)", r.manifest), ("conversion (calib convert)", r.converted_manifest),
-                            ("series (calib series)", r.series_manifest), ("trend (calib trend)", r.trend_manifest)):
+    manifests = (("factor set (calib fit)", r.manifest), ("conversion (calib convert)", r.converted_manifest),
+                 ("series (calib series)", r.series_manifest), ("trend (calib trend)", r.trend_manifest))
+    for label, manifest in manifests:
         if manifest:
             out.append(f"<h3>{esc(label)}</h3><pre>{esc(json.dumps(manifest, indent=2, default=str))}</pre>")
     return "".join(out)
@@ -634,7 +638,8 @@ def _css() -> str:
 * {{ box-sizing: border-box; }}
 body {{ margin: 0; color: var(--ink); background: #fbfaf7; font: 15px/1.5 "DejaVu Sans", "Liberation Sans",
        Arial, sans-serif; }}
-header.top {{ background: var(--accent); color: #fff; padding: 1.2rem 2rem 1rem; border-bottom: 6px solid var(--amber); }}
+header.top {{ background: var(--accent); color: #fff; padding: 1.2rem 2rem 1rem;
+              border-bottom: 6px solid var(--amber); }}
 header.top h1 {{ margin: 0 0 .2rem; font-size: 1.6rem; letter-spacing: .02em; }}
 header.top p {{ margin: 0; opacity: .9; font-size: .9rem; }}
 .page {{ display: flex; gap: 2rem; max-width: 1250px; margin: 0 auto; padding: 1.2rem 2rem 3rem; }}
@@ -702,7 +707,8 @@ def render_report(results: ReportInputs) -> str:
 <body>
 <header class="top">
 <h1>Gear calibration report</h1>
-<p>factor set {esc(m.get('factor_set_id'))} · reference gear {esc(m.get('reference'))} · made {esc(made)} by calib {esc(__version__)}</p>
+<p>factor set {esc(m.get('factor_set_id'))} · reference gear {esc(m.get('reference'))} ·
+made {esc(made)} by calib {esc(__version__)}</p>
 </header>
 <div class="page">
 <nav class="toc"><ol>{nav}</ol></nav>
