@@ -18,10 +18,11 @@ calib puts catches taken with different gears onto one footing.
 
 Calibration experiments (paired tows, side-by-side deployments) show how each
 gear's catch of each species relates to a reference gear. calib fits those
-conversion factors, checks them, and (in later steps) converts survey records
-to reference-gear units with the uncertainty carried along.
+conversion factors, checks them, converts survey records to reference-gear
+units with the uncertainty carried along, builds harmonized series, says how
+much of a trend is the change of gears, and writes a report.
 
-Typical order:  calib check  ->  calib fit  ->  (convert, series, trend, report)
+Typical order:  calib check  ->  calib fit  ->  convert  ->  series / trend  ->  report
 Before a calibration study:  calib plan (how many pairs are needed)
 Try it on invented data first:  calib demo --out demo_output
 """
@@ -143,14 +144,18 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_plan_parser(sub, formatter_class=_Formatter)
 
+    from calib.report import add_report_parser
+
+    add_report_parser(sub, formatter_class=_Formatter)
+
     p = sub.add_parser(
         "demo", formatter_class=_Formatter,
         help="run the whole job on the bundled invented demo data",
         description=textwrap.dedent("""\
-            Run check, fit, convert, series, trend and a small study plan on the bundled
-            demo data (an invented estuary with three partner programs, a legacy and a new
-            otter trawl, and a beach seine) and print what was found and where the files
-            are. Takes a few minutes on 2 cores."""),
+            Run check, fit, convert, series, trend, a small study plan and the report on
+            the bundled demo data (an invented estuary with three partner programs, a legacy
+            and a new otter trawl, and a beach seine) and print what was found and where the
+            files are, ending with the HTML report. Takes a few minutes on 2 cores."""),
     )
     p.add_argument("--out", required=True, metavar="DIR", help="directory for all demo outputs")
     p.add_argument("--draws", type=int, default=1000, help="posterior draws per chain")
@@ -244,6 +249,12 @@ def _cmd_plan(args) -> int:
     return run_plan_command(args)
 
 
+def _cmd_report(args) -> int:
+    from calib.report import run_report_command
+
+    return run_report_command(args)
+
+
 def _cmd_demo(args) -> int:
     from calib.demo import run_demo
 
@@ -263,7 +274,71 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
 
 
 COMMANDS = {"check": _cmd_check, "fit": _cmd_fit, "convert": _cmd_convert, "series": _cmd_series,
-            "trend": _cmd_trend, "plan": _cmd_plan, "demo": _cmd_demo}
+            "trend": _cmd_trend, "plan": _cmd_plan, "report": _cmd_report, "demo": _cmd_demo}
+
+
+HELP_WIDTH = 88  # columns of the generated help pages (docs/commands), whatever the terminal
+
+
+def help_text(command: str | None = None, width: int = HELP_WIDTH) -> str:
+    """What ``calib [COMMAND] --help`` prints, wrapped at ``width`` columns."""
+    import contextlib
+    import io
+    import os
+
+    saved = os.environ.get("COLUMNS")
+    os.environ["COLUMNS"] = str(width)  # argparse wraps to the terminal width it reads from COLUMNS
+    try:
+        parser = build_parser()
+        if command is not None:
+            parser = _subparsers(parser)[command]
+        buffer = io.StringIO()
+        with contextlib.redirect_stdout(buffer):
+            parser.print_help()
+        return buffer.getvalue()
+    finally:
+        if saved is None:
+            del os.environ["COLUMNS"]
+        else:
+            os.environ["COLUMNS"] = saved
+
+
+def _subparsers(parser: argparse.ArgumentParser) -> dict[str, argparse.ArgumentParser]:
+    action = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    return dict(action.choices)
+
+
+def command_names() -> list[str]:
+    """The subcommands, in the order ``calib --help`` lists them."""
+    return list(_subparsers(build_parser()))
+
+
+def command_page(command: str | None) -> str:
+    """Markdown page of one command (None: the overview) generated from its ``--help``."""
+    name = "calib" if command is None else f"calib {command}"
+    lines = [f"# {name}", "",
+             "<!-- Generated from the command's --help by `python docs/commands/update.py`; do not edit by hand. "
+             "tests/test_docs.py checks that it matches. -->", ""]
+    if command is None:
+        lines += ["Every command has its own page:", ""]
+        lines += [f"- [calib {c}]({c}.md)" for c in command_names()]
+        lines.append("")
+    lines += ["```text", f"$ {name} --help", help_text(command).rstrip("\n"), "```", ""]
+    return "\n".join(lines)
+
+
+def write_command_pages(directory) -> list:
+    """Write docs pages (README.md for ``calib``, COMMAND.md for each command) into ``directory``."""
+    from pathlib import Path
+
+    directory = Path(directory)
+    directory.mkdir(parents=True, exist_ok=True)
+    written = []
+    for command in [None, *command_names()]:
+        path = directory / ("README.md" if command is None else f"{command}.md")
+        path.write_text(command_page(command))
+        written.append(path)
+    return written
 
 
 def main(argv: list[str] | None = None) -> int:

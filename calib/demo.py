@@ -30,8 +30,8 @@ def demo_data_dir(out: Path) -> Path:
 
 def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
              progressbar: bool = True) -> dict:
-    """Run check, fit, convert, series, trend and a small study plan on the demo data; print findings and
-    where the files are.
+    """Run check, fit, convert, series, trend, a small study plan and the report on the demo data; print
+    findings and where the files are.
 
     Returns a dict of the output paths and the FactorSet (for tests and notebooks).
     """
@@ -93,6 +93,11 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(plan_result.summary())
     print("  (The demo skips the check of the fast fit against a full Bayesian fit; `calib plan` runs it.)")
 
+    from calib.report import write_report
+
+    report_path = write_report(out / "report.html", factors_dir, converted=converted_dir, series=series_dir,
+                               trend=trend_dir)
+
     elapsed = time.perf_counter() - started
     table = factor_set.table
     print("\n== What the demo found")
@@ -110,8 +115,10 @@ def run_demo(out, *, draws: int = 1000, tune: int = 1000, seed: int = 20261202,
     print(f"  figures:        {trend_dir / 'figures'}/ (raw_vs_harmonized.png, artifact.png, gear_mix.png, "
           "source_series.png)")
     print(f"  study plan:     {plan_dir}/ (plan.csv, curve.csv, plan_curves.png, plan.md, manifest.json)")
-    print(f"\nDone in {elapsed:.0f} s.")
+    print(f"  report:         {report_path}  (open it in a web browser)")
+    print(f"\nDone in {elapsed:.0f} s. The report: {report_path}")
     return {"out": out, "factors_dir": factors_dir, "factor_set": factor_set, "data_dir": data,
             "converted_dir": converted_dir, "conversion": conversion,
             "series_dir": series_dir, "series": series_result,
-            "trend_dir": trend_dir, "trend": trend_result, "plan_dir": plan_dir, "plan": plan_result}
+            "trend_dir": trend_dir, "trend": trend_result, "plan_dir": plan_dir, "plan": plan_result,
+            "report": report_path}

@@ -325,3 +325,285 @@ def plan_curves_figure(curve, table, *, target: dict | None = None, ncols: int =
         ax.set_ylabel("interval end / median", fontsize=8)
         ax.legend(fontsize=6, frameon=False, loc="upper right")
     return fig
+
+
+# --- factor set and checks
+#
+# These read a saved factor set's tables (factors.csv, checks.csv, the manifest's design) and
+# draw them. Every function returns a matplotlib Figure.
+
+# Status rules used when a caller gives none (the defaults of calib.diagnostics.StatusRules).
+_DEFAULT_RULES = {"fail_rhat": 1.05, "warn_rhat": 1.01, "fail_ess_bulk": 100.0, "warn_ess": 400.0,
+                  "ppp_low": 0.05, "ppp_high": 0.95}
+
+
+def _rules(rules: dict | None) -> dict:
+    merged = dict(_DEFAULT_RULES)
+    merged.update({k: v for k, v in (rules or {}).items() if k in _DEFAULT_RULES})
+    return merged
+
+
+def _species_level(table):
+    """Rows of a factors table that hold one factor per species x gear (no length class)."""
+    if "length_mm" in table:
+        return table[table["length_mm"].isna()]
+    return table
+
+
+def _check_rows(table):
+    """The rows whose sampler checks are drawn: species-level rows, else (a length factor set) all."""
+    rows = _species_level(table)
+    return rows if len(rows) else table
+
+
+def _factor_label(row) -> str:
+    """Species, plus the covariate level when the factor is per level."""
+    label = str(row["species"])
+    length = row.get("length_mm")
+    if length is not None and pd_notna(length):
+        label += f" {float(length):g} mm"
+    covariate, level = row.get("covariate"), row.get("level")
+    if isinstance(covariate, str) and covariate:
+        label += f" [{covariate} = {level}]"
+    return label
+
+
+def pd_notna(value) -> bool:
+    """True for a present value (not None, NaN or pandas NA)."""
+    import pandas as pd
+
+    return not bool(pd.isna(value))
+
+
+def _plain_log_axis(axis) -> None:
+    """Log-scale axis labelled 0.1, 0.2, 0.5, 1, 2, 5 ... in plain numbers."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    axis.set_minor_formatter(NullFormatter())
+
+
+def _empty_figure(message: str):
+    fig, (ax,) = new_figure(1, panel_size=(6.0, 1.6))
+    ax.axis("off")
+    ax.text(0.5, 0.5, message, ha="center", va="center", fontsize=9, color=INK, wrap=True)
+    return fig
+
+
+def plot_forest(table, *, reference: str | None = None):
+    """Forest plot of the conversion factors: one panel per gear, one row per species.
+
+    ``table``: a factors.csv frame (``FactorSet.table``). Points are the posterior medians,
+    lines the ``interval`` (e.g. 90%) intervals, on a log scale (a factor of 2 and of 1/2
+    lie equally far from 1); colour is the factor's status (``STATUS_COLOURS``). Factors
+    that could not be estimated are listed as "not estimable". Length-class rows are left
+    out (see ``plot_length_factor_bands``).
+    """
+    from matplotlib.lines import Line2D
+
+    rows = _species_level(table).copy()
+    if rows.empty:
+        return _empty_figure("No species-level factors in this factor set.")
+    rows["label"] = [_factor_label(r) for _, r in rows.iterrows()]
+    gears = sorted(rows["gear"].astype(str).unique())
+    labels = sorted(rows["label"].unique(), key=str.lower, reverse=True)  # A at the top
+    ypos = {lab: i for i, lab in enumerate(labels)}
+    fig, axes = new_figure(len(gears), ncols=min(len(gears), 3),
+                           panel_size=(3.6, 0.8 + 0.24 * len(labels)), sharey=True)
+    interval = rows["interval"].dropna()
+    level = f"{100 * float(interval.iloc[0]):.0f}% interval" if len(interval) else "interval"
+    for ax, gear in zip(axes, gears):
+        sub = rows[rows["gear"].astype(str) == gear]
+        finite = sub[np.isfinite(sub["factor_median"].astype(float))]
+        for _, r in finite.iterrows():
+            colour = STATUS_COLOURS.get(str(r["status"]), NEUTRAL)
+            y = ypos[r["label"]]
+            ax.plot([r["factor_lower"], r["factor_upper"]], [y, y], color=colour, linewidth=1.6,
+                    solid_capstyle="butt")
+            ax.plot([r["factor_median"]], [y], "o", color=colour, markersize=4.5,
+                    markeredgecolor="white", markeredgewidth=0.5)
+        ax.set_xscale("log")
+        _plain_log_axis(ax.xaxis)
+        ax.axvline(1.0, color=NEUTRAL, linestyle="--", linewidth=0.8)
+        for _, r in sub[~sub.index.isin(finite.index)].iterrows():
+            ax.text(1.0, ypos[r["label"]], " not estimable", fontsize=7, color=NEUTRAL, va="center")
+        ax.set_yticks(range(len(labels)))
+        ax.set_yticklabels(labels)
+        ax.set_ylim(-0.7, len(labels) - 0.3)
+        ax.grid(axis="x", color="#dddddd", linewidth=0.6)
+        ax.grid(axis="y", visible=False)
+        ax.set_title(f"{gear} → {reference}" if reference else gear, fontsize=9, color=INK)
+        ax.set_xlabel(f"factor (median, {level}; log scale)", fontsize=8)
+    handles = [Line2D([0], [0], color=c, marker="o", linewidth=1.6, label=s) for s, c in STATUS_COLOURS.items()]
+    fig.legend(handles=handles, loc="outside lower center", ncols=len(handles), fontsize=8, frameon=False,
+               title="status", title_fontsize=8)
+    return fig
+
+
+def plot_convergence(table, *, rules: dict | None = None):
+    """Sampler checks per factor: R-hat (left) and bulk / tail effective sample size (right).
+
+    ``table``: a factors.csv frame with rhat, ess_bulk and ess_tail. Dashed lines mark the
+    ``warn`` and ``fail`` thresholds of the status rules (``rules``: the manifest's
+    ``status_rules``; the defaults otherwise). ESS is on a log scale.
+    """
+    from matplotlib.lines import Line2D
+
+    rules = _rules(rules)
+    rows = _check_rows(table)
+    rows = rows[np.isfinite(rows["rhat"].astype(float))] if "rhat" in rows else rows.iloc[0:0]
+    if rows.empty:
+        return _empty_figure("No sampler diagnostics: this factor set was not fitted by a sampler.")
+    rows = rows.assign(label=[f"{_factor_label(r)} · {r['gear']}" for _, r in rows.iterrows()])
+    rows = rows.sort_values("label", key=lambda c: c.str.lower(), ascending=False)  # A at the top
+    labels = list(rows["label"])
+    y = np.arange(len(labels))
+    fig, (ax_r, ax_e) = new_figure(2, ncols=2, panel_size=(3.8, 0.8 + 0.2 * len(labels)), sharey=True)
+    colours = [STATUS_COLOURS.get(str(s), NEUTRAL) for s in rows["status"]]
+    ax_r.scatter(rows["rhat"].astype(float), y, c=colours, s=16, zorder=3)
+    for value, name in ((rules["warn_rhat"], "warn"), (rules["fail_rhat"], "fail")):
+        ax_r.axvline(value, color=STATUS_COLOURS[name], linestyle="--", linewidth=0.9)
+    ax_r.set_xlabel("R-hat (rank-normalised)", fontsize=8)
+    ax_r.set_xlim(min(0.998, float(rows["rhat"].min()) - 0.002), max(rules["fail_rhat"] + 0.01,
+                                                                          float(rows["rhat"].max()) + 0.005))
+    ax_e.scatter(rows["ess_bulk"].astype(float), y, color=HARMONIZED, marker="o", s=16, zorder=3, label="bulk")
+    ax_e.scatter(rows["ess_tail"].astype(float), y, color=RAW, marker="^", s=16, zorder=3, label="tail")
+    ax_e.set_xscale("log")
+    ax_e.axvline(rules["warn_ess"], color=STATUS_COLOURS["warn"], linestyle="--", linewidth=0.9)
+    ax_e.axvline(rules["fail_ess_bulk"], color=STATUS_COLOURS["fail"], linestyle="--", linewidth=0.9)
+    ax_e.set_xlabel("effective sample size (log scale)", fontsize=8)
+    for ax in (ax_r, ax_e):
+        ax.set_yticks(np.arange(len(labels)))
+        ax.set_yticklabels(labels)
+        ax.set_ylim(-0.7, len(labels) - 0.3)
+        ax.grid(axis="y", visible=False)
+        ax.grid(axis="x", color="#dddddd", linewidth=0.6)
+    handles = [Line2D([0], [0], color=HARMONIZED, marker="o", linestyle="", label="bulk ESS"),
+               Line2D([0], [0], color=RAW, marker="^", linestyle="", label="tail ESS"),
+               Line2D([0], [0], color=STATUS_COLOURS["warn"], linestyle="--", label="warn threshold"),
+               Line2D([0], [0], color=STATUS_COLOURS["fail"], linestyle="--", label="fail threshold")]
+    fig.legend(handles=handles, loc="outside lower center", ncols=4, fontsize=8, frameon=False)
+    return fig
+
+
+def plot_ppc(checks, *, rules: dict | None = None):
+    """Posterior predictive check of each factor's split: the p-value ``ppp`` per gear x species.
+
+    ``checks``: a checks.csv frame (gear, species, ppp). ``ppp`` is the share of replicated
+    datasets whose split of the group totals among the gears is at least as far from the
+    fitted one as the observed split (Pearson discrepancy; see calib.diagnostics.split_check).
+    Values inside the shaded edges (below ``ppp_low`` or above ``ppp_high`` of the status
+    rules) mean the observed splits vary more (near 0) or less (near 1) than the model allows.
+    """
+    rules = _rules(rules)
+    if checks is None or "ppp" not in checks or not np.isfinite(checks["ppp"].astype(float)).any():
+        return _empty_figure("No posterior predictive check in this factor set.")
+    rows = checks[np.isfinite(checks["ppp"].astype(float))]
+    species = sorted(rows["species"].astype(str).unique(), key=str.lower, reverse=True)
+    ypos = {s: i for i, s in enumerate(species)}
+    gears = sorted(rows["gear"].astype(str).unique())
+    colours = categorical_colours(gears)
+    markers = dict(zip(gears, "o^sDv<>"))
+    fig, (ax,) = new_figure(1, panel_size=(6.0, 1.0 + 0.24 * len(species)))
+    ax.axvspan(0, rules["ppp_low"], color=STATUS_COLOURS["warn"], alpha=0.25, linewidth=0)
+    ax.axvspan(rules["ppp_high"], 1, color=STATUS_COLOURS["warn"], alpha=0.25, linewidth=0)
+    offsets = np.linspace(-0.15, 0.15, len(gears)) if len(gears) > 1 else [0.0]
+    for off, gear in zip(offsets, gears):
+        sub = rows[rows["gear"].astype(str) == gear]
+        ax.scatter(sub["ppp"].astype(float), [ypos[s] + off for s in sub["species"].astype(str)],
+                   color=colours[gear], marker=markers.get(gear, "o"), s=20, label=gear, zorder=3)
+    ax.set_xlim(0, 1)
+    ax.set_yticks(range(len(species)))
+    ax.set_yticklabels(species)
+    ax.set_ylim(-0.7, len(species) - 0.3)
+    ax.grid(axis="y", visible=False)
+    ax.grid(axis="x", color="#dddddd", linewidth=0.6)
+    ax.set_xlabel("posterior predictive p-value of the split (shaded: outside "
+                  f"{rules['ppp_low']:g}–{rules['ppp_high']:g}, status warn)", fontsize=8)
+    ax.legend(fontsize=8, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0), title="gear",
+              title_fontsize=8)
+    return fig
+
+
+def plot_gear_network(combos, *, reference: str | None = None):
+    """Which gears fished together: gears as points, a line for each pair of gears that shared
+    calibration groups, labelled with the number of such groups.
+
+    ``combos``: list of dicts with ``gears`` (list of gear names) and ``n_groups`` (as in
+    ``calib.inspect.CheckSummary.combos``); groups with one gear are ignored. A group where
+    three gears fished counts for each of its three pairs. The reference gear is drawn filled.
+    """
+    from itertools import combinations
+
+    edges: dict[tuple[str, str], int] = {}
+    gears: set[str] = set()
+    for combo in combos:
+        names = sorted(str(g) for g in combo["gears"])
+        gears.update(names)
+        if len(names) < 2:
+            continue
+        for a, b in combinations(names, 2):
+            edges[(a, b)] = edges.get((a, b), 0) + int(combo["n_groups"])
+    if reference is not None:
+        gears.add(str(reference))
+    if not gears:
+        return _empty_figure("No calibration groups.")
+    names = sorted(gears, key=lambda g: (g != reference, g))
+    angle = np.pi / 2 + 2 * np.pi * np.arange(len(names)) / len(names)
+    pos = {g: (np.cos(a), np.sin(a)) for g, a in zip(names, angle)}
+    fig, (ax,) = new_figure(1, panel_size=(4.6, 3.2))
+    ax.axis("off")
+    widest = max(edges.values()) if edges else 1
+    for (a, b), n in edges.items():
+        (xa, ya), (xb, yb) = pos[a], pos[b]
+        ax.plot([xa, xb], [ya, yb], color=NEUTRAL, linewidth=1 + 5 * n / widest, zorder=1,
+                solid_capstyle="round")
+        ax.text((xa + xb) / 2, (ya + yb) / 2, f"{n}", fontsize=8, ha="center", va="center", color=INK,
+                bbox=dict(boxstyle="round,pad=0.2", facecolor="white", edgecolor="none"), zorder=3)
+    for g, (x, y) in pos.items():
+        is_ref = g == reference
+        ax.scatter([x], [y], s=260, color=HARMONIZED if is_ref else "white", edgecolors=HARMONIZED,
+                   linewidths=1.8, zorder=4)
+        ax.text(x, y - 0.2 if y <= 0 else y + 0.2, g + (" (reference)" if is_ref else ""), fontsize=8,
+                ha="center", va="top" if y <= 0 else "bottom", color=INK, zorder=5)
+    ax.set_xlim(-1.6, 1.6)
+    ax.set_ylim(-1.3, 1.45)
+    ax.set_aspect("equal")
+    ax.set_title("calibration groups shared by each pair of gears", fontsize=9, color=INK)
+    return fig
+
+
+def plot_length_factor_bands(table, *, reference: str | None = None):
+    """Factor by length class for the report, one panel per species, a line and band per gear (log scale).
+
+    ``table``: a factors.csv frame; only rows with a ``length_mm`` value are drawn (the
+    calibrated length range), at the classes' lower bounds. Bands are the ``interval`` intervals.
+    Without length rows the figure says so. (The length model's own figure, with class
+    mid-points and the truth for recovery checks, lives with that model.)
+    """
+    rows = table[table["length_mm"].notna()] if "length_mm" in table else table.iloc[0:0]
+    if rows.empty:
+        return _empty_figure("No length-dependent factors in this factor set.")
+    species = sorted(rows["species"].astype(str).unique(), key=str.lower)
+    gears = sorted(rows["gear"].astype(str).unique())
+    colours = categorical_colours(gears)
+    fig, axes = new_figure(len(species), ncols=3, panel_size=(3.0, 2.2))
+    for ax, sp in zip(axes, species):
+        for gear in gears:
+            sub = rows[(rows["species"].astype(str) == sp) & (rows["gear"].astype(str) == gear)]
+            sub = sub.sort_values("length_mm")
+            if sub.empty:
+                continue
+            x = sub["length_mm"].astype(float)
+            ax.fill_between(x, sub["factor_lower"].astype(float), sub["factor_upper"].astype(float),
+                            color=colours[gear], alpha=0.25, linewidth=0)
+            ax.plot(x, sub["factor_median"].astype(float), color=colours[gear], linewidth=1.4, label=gear)
+        ax.set_yscale("log")
+        _plain_log_axis(ax.yaxis)
+        ax.axhline(1.0, color=NEUTRAL, linestyle="--", linewidth=0.8)
+        ax.set_title(sp, fontsize=9, color=INK)
+        ax.set_xlabel("length (mm)", fontsize=8)
+        ax.set_ylabel(f"factor to {reference}" if reference else "factor", fontsize=8)
+    axes[0].legend(fontsize=7, frameon=False)
+    return fig
