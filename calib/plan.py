@@ -1062,46 +1062,26 @@ def _max_groups(text: str) -> int:
     return value
 
 
-def _fraction(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not 0 < value < 1:
-        raise argparse.ArgumentTypeError(f"must be a number between 0 and 1, not {text!r}")
-    return value
+def _number(accept, requirement: str, none_is_infinite: bool = False):
+    """An argparse type: a float that ``accept`` admits, else an error saying ``requirement``."""
+    def parse(text: str) -> float:
+        if none_is_infinite and text.strip().lower() in ("inf", "none"):
+            return math.inf
+        try:
+            value = float(text)
+        except ValueError:
+            value = float("nan")
+        if not accept(value):  # NaN fails every comparison, so non-numbers land here too
+            raise argparse.ArgumentTypeError(f"must be {requirement}, not {text!r}")
+        return value
+
+    return parse
 
 
-def _above_one(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not value > 1:
-        raise argparse.ArgumentTypeError(f"must be a number above 1, not {text!r}")
-    return value
-
-
-def _positive_float(text: str) -> float:
-    if text.strip().lower() in ("inf", "none"):
-        return math.inf
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not value > 0:
-        raise argparse.ArgumentTypeError(f"must be a number above 0 (or 'none'), not {text!r}")
-    return value
-
-
-def _non_negative_float(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not value >= 0:
-        raise argparse.ArgumentTypeError(f"must be a number of 0 or more, not {text!r}")
-    return value
+_fraction = _number(lambda v: 0 < v < 1, "a number between 0 and 1")
+_above_one = _number(lambda v: v > 1, "a number above 1")
+_positive_float = _number(lambda v: v > 0, "a number above 0 (or 'none')", none_is_infinite=True)
+_non_negative_float = _number(lambda v: v >= 0, "a number of 0 or more")
 
 
 def add_plan_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter) -> argparse.ArgumentParser:
