@@ -195,31 +195,23 @@ def esc(value) -> str:
     return html.escape(str(value), quote=True)
 
 
-def _num(value, digits: int = 3) -> str:
+def _fmt(value, spec: str | None = None) -> str:
+    """A number by a format spec (e.g. '.3f'), else readably (thousands separators, 3 significant
+    digits); text is escaped as it is, missing values become a dash."""
     try:
         v = float(value)
     except (TypeError, ValueError):
         return esc(value)
     if not np.isfinite(v):
         return "—"
+    if spec:
+        return format(v, spec)
     if v.is_integer() and abs(v) < 1e15:
         return f"{int(v):,}"
-    if abs(v) >= 100:
-        return f"{v:,.1f}"
-    if v != 0 and abs(v) < 1e-3:
-        return f"{v:.{digits}g}"
-    return f"{v:.{digits}g}"
+    return f"{v:,.1f}" if abs(v) >= 100 else f"{v:.3g}"
 
 
-def _fmt(value, spec: str | None) -> str:
-    """A number by a format spec (e.g. '.3f'), or by ``_num`` without one; blanks for missing values."""
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return esc(value)
-    if not np.isfinite(v):
-        return "—"
-    return format(v, spec) if spec else _num(v)
+_num = _fmt
 
 
 def _table(frame: pd.DataFrame, columns: dict, *, status_column: str | None = None, numeric=(), code=()) -> str:
