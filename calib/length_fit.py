@@ -158,7 +158,88 @@ def fit_by_length(tables, counts, *, reference: str, length_bin: float, groups_m
     manifest["timestamp"] = utc_timestamp()
     manifest["factor_set_id"] = factor_set_id(manifest, table)
     idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
-    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest)
+    split = split_by_length(idata, lc, interval=interval, seed=seed)
+    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest,
+                     extra_tables={"length_split": split})
+
+
+def split_by_length(idata, lc, *, interval: float = 0.9, n_draws: int = 200, seed: int = 0):
+    """Observed and fitted share of each gear in each species x length class, pooled over groups.
+
+    For species s, class l and gear g, over the cells of that class (groups where the gear fished):
+    observed share = sum_i y_ig / sum_i n_i; fitted share at draw d = sum_i n_i p_ig(d) / sum_i n_i
+    with p_ig = w_ig exp(theta_g(l)) / sum over present gears (the split's expected share). Saved in
+    the factor set as ``length_split.csv`` (species, length_mm, gear, n_fish, observed_share,
+    fitted_median, fitted_lower, fitted_upper) for :func:`calib.plots.plot_split_by_length`.
+    """
+    import pandas as pd
+
+    cells = lc.cells
+    th = idata.posterior["theta_class"].transpose("chain", "draw", "gear", "stratum").values
+    th = th.reshape(-1, th.shape[2], th.shape[3])
+    rng = np.random.default_rng(seed)
+    pick = np.sort(rng.choice(th.shape[0], size=min(n_draws, th.shape[0]), replace=False))
+    th = th[pick]  # (D, G, S)
+    present = np.asarray(cells.present, dtype=bool)
+    log_w = np.log(np.where(present, cells.weight, 1.0))
+    eta = log_w[None] + th[:, :, cells.cell_species].transpose(0, 2, 1)  # (D, C, G)
+    eta = np.where(present[None], eta, -np.inf)
+    share = np.exp(eta - eta.max(axis=2, keepdims=True))
+    share /= share.sum(axis=2, keepdims=True)
+    y = np.asarray(cells.counts, dtype=float)
+    n = y.sum(axis=1)
+    lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
+    rows = []
+    for k in range(len(cells.species)):
+        m = cells.cell_species == k
+        for g, gear in enumerate(cells.gears):
+            mg = m & present[:, g]
+            if not mg.any():
+                continue
+            tot = n[mg].sum()
+            fitted = (share[:, mg, g] * n[mg][None]).sum(axis=1) / tot
+            rows.append((lc.species[lc.stratum_species[k]], float(lc.stratum_length[k]), gear, int(tot),
+                         float(y[mg, g].sum() / tot), float(np.median(fitted)), float(np.quantile(fitted, lo_q)),
+                         float(np.quantile(fitted, hi_q))))
+    return pd.DataFrame(rows, columns=["species", "length_mm", "gear", "n_fish", "observed_share", "fitted_median",
+                                       "fitted_lower", "fitted_upper"])
+
+
+def factor_set_from_length_draws(theta, *, reference: str, bin_mm: float, factor_set_id: str,
+                                 effort_unit: str = "m2", status="ok", interval: float = 0.9):
+    """A length factor set from known theta draws (for simulations and tests; no fitting).
+
+    ``theta``: xarray DataArray (chain, draw, gear, species, length) of log(q_gear / q_ref) per class
+    (length = class lower bound, mm; NaN outside a species' classes; the reference gear's row 0).
+    ``status``: one status for every row, or a dict (species, gear, length_mm) -> status.
+    Every finite non-reference entry gets a factors.csv row; the manifest records the classes.
+    """
+    import arviz as az
+    import pandas as pd
+
+    from calib.factors import FACTOR_COLUMNS, FactorSet
+
+    lengths = np.asarray(theta.coords["length"].values, dtype=float)
+    classes, rows = {}, []
+    for sp in theta.coords["species"].values:
+        finite = np.isfinite(theta.sel(species=sp).values).all(axis=(0, 1, 2))
+        classes[str(sp)] = [float(x) for x in lengths[finite]]
+        for gear in theta.coords["gear"].values:
+            if gear == reference:
+                continue
+            for L in lengths[finite]:
+                row = {c: np.nan for c in FACTOR_COLUMNS}
+                st = status.get((str(sp), str(gear), float(L)), "ok") if isinstance(status, dict) else status
+                row.update(species=str(sp), gear=str(gear), reference=reference, effort_unit=effort_unit,
+                           length_mm=float(L), status=st, reason="", interval=interval)
+                rows.append(row)
+    ranges = {s: [v[0], v[-1] + bin_mm] for s, v in classes.items() if v}
+    manifest = {"factor_set_id": factor_set_id, "reference": reference, "reference_effort_unit": effort_unit,
+                "method": "synthetic", "settings": {"interval": interval}, "inputs": {},
+                "domain": {"numeric": [], "categorical": [], "skipped": {}, "by_gear": {}},
+                "lengths": {"bin_mm": float(bin_mm), "classes_mm": classes, "calibrated_range_mm": ranges}}
+    return FactorSet(table=pd.DataFrame(rows, columns=FACTOR_COLUMNS), checks=pd.DataFrame(),
+                     idata=az.InferenceData(posterior=theta.to_dataset(name="theta")), manifest=manifest)
 
 
 def length_theta_draws(factor_set, species: str, gear: str) -> tuple[np.ndarray, np.ndarray]:
@@ -176,4 +257,5 @@ def is_length_factor_set(factor_set) -> bool:
     return "length" in factor_set.idata.posterior["theta"].dims
 
 
-__all__ = ["fit_by_length", "prior_theta_class", "length_theta_draws", "is_length_factor_set"]
+__all__ = ["fit_by_length", "prior_theta_class", "length_theta_draws", "is_length_factor_set", "split_by_length",
+           "factor_set_from_length_draws"]

@@ -46,16 +46,18 @@ class LengthModelSpec:
     max_basis : at most this many B-spline coefficients per species x gear (cubic B-splines;
         a species with fewer than 4 classes gets one coefficient per class, i.e. the random walk
         on the classes themselves). More coefficients than the data can resolve are harmless: the
-        random-walk prior does the smoothing (the point of P-splines).
+        random-walk prior does the smoothing (the point of P-splines). Too few are not: with 7
+        coefficients over 16 classes a steep logistic retention ratio was followed by a spurious
+        dip and rise (ringing) in simulations; 12 removed it.
     rw_sd : prior scale of sigma_g ~ HalfNormal(rw_sd), the sd of one random-walk step of the
         coefficients (log scale). 0.5 allows the log factor to change by about 0.5 * sqrt(K - 1),
-        i.e. a factor of about 3 across the range at one prior sd with K = 7; sigma near 0 (a
+        i.e. a factor of about 3 across the range at one prior sd with K = 12; sigma near 0 (a
         factor constant in length) is allowed.
     overdispersion : "dirichlet-multinomial" (default) or "none", as in :class:`calib.model.ModelSpec`.
     priors : the constant model's :class:`calib.model.Priors` (mu, tau, kappa).
     """
 
-    max_basis: int = 7
+    max_basis: int = 12
     rw_sd: float = 0.5
     overdispersion: str = "dirichlet-multinomial"
     priors: Priors = field(default_factory=Priors)
@@ -83,7 +85,7 @@ class LengthModelSpec:
         return d
 
 
-def spline_basis(lowers, bin_mm: float, max_basis: int = 7) -> np.ndarray:
+def spline_basis(lowers, bin_mm: float, max_basis: int = 12) -> np.ndarray:
     """B-spline basis of one species' length classes, evaluated at the class mid-points.
 
     lowers : class lower bounds (mm), consecutive classes of width ``bin_mm``.
