@@ -293,6 +293,13 @@ def test_convert_nearest_class_flags(tmp_path):
     assert cv.n_in == cv.n_converted + cv.n_rejected
     out = cv.save(tmp_path / "conv")
     assert (out / "length_factor_draws.parquet").is_file() and (out / "record_lengths.csv").is_file()
+    # series cannot use them yet and says so, from memory and from the directory
+    from calib.series import series
+
+    with pytest.raises(ValueError, match="length"):
+        series(cv)
+    with pytest.raises(InputError, match="length class"):
+        series(out)
 
 
 def test_convert_rejects_fail_classes_and_coarse_survey_lengths(tmp_path):
