@@ -352,4 +352,23 @@ def test_length_recovery_coverage_study(tmp_path):
         t = fs.table.merge(st.theta_length[st.theta_length.gear == "trawl"][["species", "length_mm", "factor"]],
                            on=["species", "length_mm"], suffixes=("", "_true"))
         cover.append(((t.factor_lower <= t.factor) & (t.factor <= t.factor_upper)).mean())
+        print(f"seed {seed}: {len(t)} classes, coverage {cover[-1]:.2f}, divergences {fs.manifest['divergences']}")
     assert np.mean(cover) >= 0.8, cover
+
+
+def test_fit_cli_length_usage_errors(tmp_path, capsys):
+    """--length-bin without --lengths, with a non-positive width or with a baseline is a usage error
+    (exit 2) before anything is read; --help explains the option."""
+    from calib.cli import main
+
+    base = ["fit", "--hauls", "h.csv", "--catches", "c.csv", "--reference", "seine", "--out", str(tmp_path / "o")]
+    for extra in (["--length-bin", "10"], ["--length-bin", "0", "--lengths", "l.csv"],
+                  ["--length-bin", "10", "--lengths", "l.csv", "--method", "ratio"]):
+        with pytest.raises(SystemExit) as err:
+            main(base + extra)
+        assert err.value.code == 2
+    assert "--length-bin" in capsys.readouterr().err
+    with pytest.raises(SystemExit):
+        main(["fit", "--help"])
+    text = capsys.readouterr().out
+    assert "--length-bin" in text and "--length-min-fish" in text
