@@ -25,8 +25,10 @@ Public: :class:`LengthModelSpec`, :func:`spline_basis`, :func:`build_length_mode
 
 InferenceData names: posterior ``theta`` (gear, species, length; NaN outside a species' calibrated
 range; reference row 0), ``theta_class`` (gear, stratum; the same values, one per species x class),
-``level``, ``sigma_rw``, ``mu``, ``tau``, ``log_kappa`` (combo, species) and the sampler's ``z_*``;
-log_likelihood ``split`` (cell); observed_data ``split`` (cell, gear).
+``beta`` (factor_gear, species, basis; centred form) or ``z_level``/``z_step`` (non-centred form),
+``level``, ``sigma_rw``, ``mu``, ``tau``, ``log_kappa`` (combo, species), ``log_kappa_mean``,
+``log_kappa_sd``, ``z_log_kappa``; log_likelihood ``split`` (cell); observed_data ``split``
+(cell, gear).
 """
 
 from __future__ import annotations
@@ -55,6 +57,10 @@ class LengthModelSpec:
         factor constant in length) is allowed.
     overdispersion : "dirichlet-multinomial" (default) or "none", as in :class:`calib.model.ModelSpec`.
     priors : the constant model's :class:`calib.model.Priors` (mu, tau, kappa).
+    parametrization : "centred" (default: the coefficients are sampled directly, their prior
+        written as a density) or "non-centred" (level and random-walk steps as standard normals).
+        Same model, same posterior; on informative simulated data the centred form took about
+        half the sampling time (measured by the project, 2 species x 60 groups x 33 classes).
     """
 
     max_basis: int = 12
@@ -62,6 +68,10 @@ class LengthModelSpec:
     overdispersion: str = "dirichlet-multinomial"
     priors: Priors = field(default_factory=Priors)
     parametrization: str = "centred"
+
+    def __post_init__(self):
+        if self.parametrization not in ("centred", "non-centred"):
+            raise ValueError(f"parametrization must be 'centred' or 'non-centred', not {self.parametrization!r}")
 
     def to_dict(self) -> dict:
         d = {

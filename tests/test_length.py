@@ -163,6 +163,7 @@ def test_length_fit_recovers_the_retention_ratio(length_fit):
                        on=["species", "length_mm"], how="left", suffixes=("", "_true"))
     assert t["factor"].notna().all()
     covered = (t["factor_lower"] <= t["factor"]) & (t["factor"] <= t["factor_upper"])
+    print(f"length recovery: {int(covered.sum())} of {len(t)} classes covered by the 90 % band")
     assert len(t) >= 10
     assert covered.mean() >= 0.75, t[["species", "length_mm", "factor_median", "factor_lower", "factor_upper",
                                       "factor"]].to_string()
