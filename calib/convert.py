@@ -898,6 +898,9 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
 
     length_draws = lconv.draws if lconv is not None else None
     record_lengths = lconv.record_lengths if lconv is not None else None
+    if not by_length and tables.lengths is not None:
+        notes.append("lengths were given but the factor set's factors do not depend on length: the lengths "
+                     "were checked and not used")
     if by_length and tables.lengths is None:
         notes.append("the factor set's factors depend on length but no survey lengths were given (--lengths): "
                      "its species x gears cannot be converted")

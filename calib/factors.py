@@ -145,7 +145,11 @@ class FactorSet:
         if gear == self.reference:
             n = self.idata.posterior.sizes["chain"] * self.idata.posterior.sizes["draw"]
             return np.ones(n)
-        theta = self.idata.posterior["theta"].sel(species=species, gear=gear)
+        theta = self.idata.posterior["theta"]
+        if "length" in theta.dims:
+            raise ValueError("this factor set's factors depend on length: use "
+                             "calib.length_fit.length_theta_draws(factor_set, species, gear)")
+        theta = theta.sel(species=species, gear=gear)
         return np.exp(-theta.values.reshape(-1))
 
     def summary(self) -> str:
