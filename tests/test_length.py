@@ -192,8 +192,14 @@ def test_length_factor_set_layout(length_fit):
     assert fs.table[["rhat", "ess_bulk", "prior_ratio", "n_groups", "n_caught"]].notna().all().all()
     theta = fs.idata.posterior["theta"]
     assert theta.dims == ("chain", "draw", "gear", "species", "length")
-    assert np.isnan(theta.sel(gear="trawl", species="pinfish", length=theta["length"].max()).values).all() or \
-        theta["length"].max() <= L["calibrated_range_mm"]["pinfish"][1] - 20
+    for sp in SPECIES:  # NaN exactly outside the species' classes
+        finite = np.isfinite(theta.sel(gear="trawl", species=sp).values).all(axis=(0, 1))
+        assert list(theta["length"].values[finite]) == L["classes_mm"][sp]
+    from calib.length_fit import length_theta_draws
+
+    classes, th = length_theta_draws(fs, "pinfish", "trawl")
+    rows = fs.table[fs.table.species == "pinfish"]
+    np.testing.assert_allclose(np.median(np.exp(-th), axis=0), rows["factor_median"], rtol=1e-5)
     assert "log_likelihood" in fs.idata.groups() and "split" in fs.idata.log_likelihood
     assert (out / "length_split.csv").is_file()
 
