@@ -258,8 +258,8 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
             parser.error("--length-bin must be a positive number of mm, e.g. 10")
         if args.lengths is None:
             parser.error("--length-bin needs --lengths FILE (the measured fish)")
-        if args.method != "hierarchical":
-            parser.error("--length-bin works with --method hierarchical only")
+        if args.method != "hierarchical" or args.pooling != "partial":
+            parser.error("--length-bin works with --method hierarchical and --pooling partial only")
     for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups", "length_min_fish"):
         value = getattr(args, name, None)
         if value is not None and value < (0 if name == "tune" else 1):

@@ -127,8 +127,8 @@ def fit(
                 for s in unlisted
             ])
     if length_bin is not None:
-        if method != "hierarchical":
-            raise ValueError("--length-bin works with the hierarchical method only")
+        if method != "hierarchical" or pooling != "partial":
+            raise ValueError("--length-bin works with the hierarchical method and partial pooling only")
         from calib.length_fit import fit_by_length
 
         return fit_by_length(tables, counts, reference=reference, length_bin=length_bin, groups_map=groups_map,
