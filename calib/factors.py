@@ -168,6 +168,9 @@ class FactorSet:
                 f"{sum(lengths['fish_outside_range'].values())}.")
             for sp, (lo, hi) in lengths["calibrated_range_mm"].items():
                 lines.append(f"  calibrated lengths of {sp}: {lo:g} to {hi:g} mm")
+            if lengths.get("species_without_range"):
+                lines.append("  no length factors (too few measured fish in groups with two or more gears): "
+                             + ", ".join(lengths["species_without_range"]))
         else:
             lines.append(
                 f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "

@@ -151,6 +151,7 @@ def fit_by_length(tables, counts, *, reference: str, length_bin: float, groups_m
             "no_lengths_haul_species": lc.report["no_lengths_haul_species"],
             "no_lengths_fish": lc.report["no_lengths_fish"],
             "fish_outside_range": lc.report["fish_outside_range"],
+            "species_without_range": lc.report["species_without_range"],
         },
         "versions": software_versions(),
     }
