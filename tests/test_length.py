@@ -431,3 +431,17 @@ def test_measured_fraction_offset_recovers_theta_from_subsampled_hauls():
     z_bad, _ = z_scores(no_f)
     print(f"classes {len(z)}: mean z {z.mean():.2f}, coverage {covered.mean():.2f}; without f: mean z {z_bad.mean():.1f}")
     assert abs(z_bad.mean()) > 5
+
+
+def test_species_never_measured_gets_no_classes(tmp_path):
+    """A species caught in the calibration but never measured has no calibrated range (no factor rows
+    would be written for it), is named in the report, and its catches count as left out."""
+    rows = [("P1-A", "pinfish", 41, 25), ("P1-B", "pinfish", 43, 40), ("P2-A", "pinfish", 42, 10),
+            ("P2-B", "pinfish", 44, 8)]
+    catches = [("P1-A", "pinfish", 100), ("P1-B", "pinfish", 40), ("P2-A", "pinfish", 10), ("P2-B", "pinfish", 8),
+               ("P1-A", "spot", 3), ("P2-B", "spot", 5)]
+    t = _tiny_tables(tmp_path, rows, catches)
+    lc = build_length_cells(t.hauls, complete_zeros(t), t.lengths, "A", 10.0)
+    assert lc.report["species_without_range"] == ["spot"]
+    assert "spot" not in lc.classes and set(lc.stratum_frame()["species"]) == {"pinfish"}
+    assert lc.report["no_lengths_by_species"] == {"spot": 2} and lc.report["no_lengths_fish"] == 8
