@@ -346,8 +346,9 @@ def test_convert_cli_options(tmp_path, capsys):
 @pytest.mark.slow
 def test_length_recovery_coverage_study(tmp_path):
     """Average coverage of the 90 % band over 4 simulated studies (40 groups, 10-mm classes, all
-    fish measured) is at least 0.8. The CI subset is the single 20-mm study above (power: one study of
-    about 14 classes detects a gross miscalibration, e.g. coverage near 0.5, not a modest one)."""
+    fish measured) is at least 0.8. Measured 2026-12-02: 0.89, 0.88, 0.81, 0.96 (mean 0.885; 9.4 min
+    on the shared 2-core machine). The CI subset is the single 20-mm study above (power: one study of
+    about 15 classes detects a gross miscalibration, e.g. coverage near 0.5, not a modest one)."""
     from calib.fitting import fit
 
     cover = []
