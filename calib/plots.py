@@ -140,6 +140,15 @@ def plot_factor_by_length(factors, *, truth=None, species=None, ncols: int = 3):
                             linestyle="--", label=f"{gear} (truth)")
         ax.axhline(1.0, color=NEUTRAL, linewidth=0.8)
         ax.set_yscale("log")
+        from matplotlib.ticker import FuncFormatter
+
+        def _minor(v, _):  # label 0.2, 0.3, 0.5, 2, 3, 5, ... only: the others crowd the axis
+            mantissa = round(v / 10 ** np.floor(np.log10(v)), 6) if v > 0 else 0
+            return f"{v:g}" if mantissa in (2, 3, 5) else ""
+
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))  # 1 rather than 10^0
+        ax.yaxis.set_minor_formatter(FuncFormatter(_minor))
+        ax.tick_params(which="minor", labelsize=8)
         ax.set_title(sp, fontsize=9, color=INK)
         ax.set_xlabel("length (mm)", fontsize=8)
         ax.set_ylabel("factor (reference / gear)", fontsize=8)
