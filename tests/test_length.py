@@ -446,3 +446,58 @@ def test_species_never_measured_gets_no_classes(tmp_path):
     assert lc.report["species_without_range"] == ["spot"]
     assert "spot" not in lc.classes and set(lc.stratum_frame()["species"]) == {"pinfish"}
     assert lc.report["no_lengths_by_species"] == {"spot": 2} and lc.report["no_lengths_fish"] == 8
+
+
+# ----------------------------------------------------------------------------- model pieces
+
+
+def test_spline_basis_is_a_partition_of_unity():
+    """B-splines sum to 1 at every point of their range (de Boor 1978, "A Practical Guide to
+    Splines", recalled from memory), so constant coefficients give a constant factor; fewer than 4
+    classes get one coefficient per class."""
+    from calib.length_model import spline_basis
+
+    lowers = np.arange(20.0, 200.0, 10.0)  # 18 classes
+    B = spline_basis(lowers, 10.0, max_basis=12)
+    assert B.shape == (18, 12)
+    np.testing.assert_allclose(B.sum(axis=1), 1.0, atol=1e-12)
+    np.testing.assert_allclose(B @ np.full(12, -0.7), -0.7, atol=1e-12)
+    np.testing.assert_array_equal(spline_basis([40.0, 60.0, 80.0], 20.0), np.eye(3))
+    assert spline_basis(lowers[:6], 10.0).shape == (6, 6)
+
+
+def test_centred_coefficient_prior_matches_the_random_walk_density():
+    """The centred form writes the prior of the coefficients as a density: mean(beta) ~ Normal(mu,
+    tau) and every step beta_k - beta_(k-1) ~ Normal(0, sigma). Checked against scipy.stats.norm at a
+    random point, and the numpy prior draws used for prior_ratio have those moments."""
+    from scipy import stats
+
+    from calib.length_fit import prior_theta_class
+    from calib.length_model import LengthModelSpec, _basis_blocks, build_length_model
+
+    st = _study(n_groups=6)
+    hauls = st.hauls.assign(date=pd.to_datetime(st.hauls["date"]))
+    counts = pd.MultiIndex.from_product([hauls["haul_id"], SPECIES], names=["haul_id", "species"]).to_frame(
+        index=False).merge(st.catches, how="left").fillna({"count": 0})
+    lc = build_length_cells(hauls, counts, st.lengths, "seine", 20.0)
+    spec = LengthModelSpec()
+    m = build_length_model(lc, spec)
+    _, n_basis, k_max = _basis_blocks(lc, spec)
+    rng = np.random.default_rng(4)
+    point = m.initial_point()
+    beta = rng.normal(0, 0.7, size=point["beta"].shape)
+    point.update(beta=beta, mu=np.array([[0.3]]), tau_log__=np.log([0.6]), sigma_rw_log__=np.log([0.4]))
+    names = ["mu", "tau_log__", "sigma_rw_log__", "beta"]
+    values = {v.name: v for v in m.value_vars}
+    f = m.compile_fn(m.potentiallogp, inputs=[values[n] for n in names], point_fn=False)  # its only potential
+    got = float(f(*[point[n] for n in names]))
+    want = 0.0
+    for s in range(len(lc.species)):
+        b = beta[0, s, : n_basis[s]]
+        want += stats.norm.logpdf(b.mean(), 0.3, 0.6) + stats.norm.logpdf(np.diff(b), 0, 0.4).sum()
+        want += stats.norm.logpdf(beta[0, s, n_basis[s]:], 0, 1).sum()  # unused padding: N(0, 1)
+    np.testing.assert_allclose(got, want, rtol=1e-10)
+    # numpy prior draws (prior_ratio's denominator): theta constant when the walk has no steps
+    flat = prior_theta_class(lc, LengthModelSpec(rw_sd=1e-9), n_draws=50, seed=0)
+    per_species = [flat[:, 0, lc.stratum_species == s] for s in range(len(lc.species))]
+    assert all(np.ptp(x, axis=1).max() < 1e-6 for x in per_species)
