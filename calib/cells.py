@@ -437,7 +437,7 @@ def build_length_cells(
 
     if not bin_mm > 0:
         raise ValueError("bin_mm must be > 0 (mm)")
-    _, problems = check_length_bin(lengths, bin_mm, lengths_file)
+    resolution, problems = check_length_bin(lengths, bin_mm, lengths_file)
     if problems:
         raise InputError(problems)
 
@@ -557,5 +557,5 @@ def build_length_cells(
     cells.report = dict(report)
     return LengthCells(cells=cells, species=species, stratum_species=stratum_species, stratum_length=stratum_length,
                        bin_mm=float(bin_mm), species_range=species_range, classes=classes,
-                       input_resolution=check_length_bin(lengths, bin_mm, lengths_file)[0],
+                       input_resolution=resolution,
                        species_pool=species_pool, report=report)
