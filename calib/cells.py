@@ -302,3 +302,260 @@ def factor_support(cells: Cells) -> pd.DataFrame:
         for s in range(cells.n_species):
             rows.append((cells.gears[g], cells.species[s], int(n_groups[s]), int(n_caught[s])))
     return pd.DataFrame(rows, columns=["gear", "species", "n_groups", "n_caught"])
+
+
+# --------------------------------------------------------------------------- length classes
+
+
+@dataclass
+class LengthCells:
+    """Calibration cells per group x species x length class (design sections 3 and 5).
+
+    ``cells`` is an ordinary :class:`Cells` whose *species* axis holds one entry per species x
+    length class (a *stratum*, labelled ``"species | 40 mm"``), so every per-species tool
+    (factor_support, the split check) works per class unchanged. Its counts are the *measured*
+    fish of the class; its weight is the relative effort times the measured fraction,
+
+        w_igs = sum over hauls h of gear g in group i of (e_h / ebar_i) * f_hs,
+        f_hs  = measured_hs / count_hs   (1 when count_hs = 0: nothing to measure),
+
+    so a subsampled haul is expected to show f times the fish of a fully measured one. A haul x
+    species with count > 0 but no lengths has f = 0: it is left out of the length model (a gear
+    left with w = 0 in a group is masked there) and counted in ``report['no_lengths_*']``.
+
+    species : the fish species (in order); stratum_species (n_strata,) index into it;
+    stratum_length (n_strata,) class lower bound (mm); bin_mm the class width (mm);
+    species_range : species -> (lowest class lower bound, upper edge of the highest class) in mm,
+        the calibrated length range; classes : species -> list of class lower bounds (mm);
+    input_resolution : species -> width (mm) of the input length classes (0 when one length only);
+    species_pool : (n_species,) pooling group of each species (into ``cells.pool_groups``).
+    """
+
+    cells: Cells
+    species: list[str]
+    stratum_species: np.ndarray
+    stratum_length: np.ndarray
+    bin_mm: float
+    species_range: dict
+    classes: dict
+    input_resolution: dict
+    species_pool: np.ndarray
+    report: dict = field(default_factory=dict)
+
+    def stratum_frame(self) -> pd.DataFrame:
+        """One row per stratum: stratum (label), species, length_mm (class lower bound)."""
+        return pd.DataFrame({
+            "stratum": self.cells.species,
+            "species": np.asarray(self.species, dtype=object)[self.stratum_species],
+            "length_mm": self.stratum_length,
+        })
+
+
+def stratum_label(species: str, lower_mm: float) -> str:
+    """Label of one species x length class, e.g. ``'pinfish | 40 mm'``."""
+    return f"{species} | {lower_mm:g} mm"
+
+
+def _resolution(values: np.ndarray) -> float:
+    """Width of the input length classes (mm): the greatest common step between distinct lengths.
+
+    Whole-mm lengths give the gcd of their differences (1 for individually measured fish, 5 for
+    5-mm classes); other lengths the smallest gap. 0 when there is a single distinct length.
+    """
+    u = np.unique(np.asarray(values, dtype=float))
+    if len(u) < 2:
+        return 0.0
+    gaps = np.diff(u)
+    scaled = np.rint(gaps * 10)  # tenths of a mm: lengths given to 0.1 mm stay exact
+    if np.allclose(gaps * 10, scaled, atol=1e-6):
+        return float(np.gcd.reduce(scaled.astype(np.int64))) / 10.0
+    return float(gaps.min())
+
+
+def length_class_of(length_mm, bin_mm: float) -> np.ndarray:
+    """Lower bound (mm) of the fit length class holding each length: floor(length / bin) * bin."""
+    x = np.asarray(length_mm, dtype=float)
+    return np.floor(x / bin_mm + 1e-9) * bin_mm
+
+
+def check_length_bin(lengths: pd.DataFrame, bin_mm: float, where: str = "lengths") -> tuple[dict, list]:
+    """Input class width per species and the problems of a ``bin_mm`` finer than the input.
+
+    A fit class must hold whole input classes: every input class [L, L + r) (r the species'
+    input resolution, :func:`_resolution`) must lie inside one fit class. Returns
+    (species -> resolution in mm, list of :class:`calib.errors.Problem`).
+    """
+    from calib.errors import Problem
+
+    resolution, problems = {}, []
+    for sp, part in lengths.groupby("species", sort=True):
+        r = _resolution(part["length_mm"].to_numpy())
+        resolution[str(sp)] = r
+        if r <= 0:
+            continue
+        lo = part["length_mm"].to_numpy(dtype=float)
+        straddle = length_class_of(lo, bin_mm) != length_class_of(lo + r - 1e-6, bin_mm)
+        if bin_mm < r - 1e-9 or straddle.any():
+            k = int(np.flatnonzero(straddle)[0]) if straddle.any() else 0
+            row = part["_row"].iloc[k] if "_row" in part else None
+            problems.append(Problem(
+                where, None if row is None else int(row), "length_mm",
+                f"species '{sp}' is recorded in {r:g}-mm length classes; --length-bin {bin_mm:g} would split "
+                f"them (e.g. the class starting at {lo[k]:g} mm)",
+                f"use a --length-bin that is a multiple of {r:g} mm (e.g. {max(r, bin_mm - bin_mm % r + r):g})"))
+    return resolution, problems
+
+
+def build_length_cells(
+    hauls: pd.DataFrame,
+    counts: pd.DataFrame,
+    lengths: pd.DataFrame,
+    reference: str,
+    bin_mm: float,
+    species_groups: dict[str, str] | None = None,
+    min_class_fish: int = 1,
+    lengths_file: str = "lengths",
+) -> LengthCells:
+    """Calibration cells per group x species x length class from the lengths table.
+
+    Parameters
+    ----------
+    hauls : validated hauls (``Tables.hauls``); counts : zero-completed haul x species counts
+        (``tables.complete_zeros``); lengths : validated lengths (haul_id, species, length_mm, n).
+    reference : the reference gear (gear 0).
+    bin_mm : width of the fit's length classes (mm); classes are [k * bin, (k + 1) * bin).
+        Never finer than the input classes: raises ``InputError`` when a class would split an
+        input class (:func:`check_length_bin`).
+    species_groups : optional species -> pooling group.
+    min_class_fish : the calibrated range of a species runs from its first to its last class
+        with at least this many measured fish (all gears and groups together); lengths outside
+        it are left out and counted in ``report['fish_outside_range']``.
+
+    Only groups where two or more gears fished count. Returns :class:`LengthCells`.
+    """
+    from calib.errors import InputError
+
+    if not bin_mm > 0:
+        raise ValueError("bin_mm must be > 0 (mm)")
+    resolution, problems = check_length_bin(lengths, bin_mm, lengths_file)
+    if problems:
+        raise InputError(problems)
+
+    base = build_cells(hauls, counts, reference, species_groups=species_groups)
+    gears, groups = base.gears, base.groups
+    gear_index = {g: i for i, g in enumerate(gears)}
+    group_index = {p: i for i, p in enumerate(groups)}
+    n_groups, n_gears = len(groups), len(gears)
+    present_gg, effort_gg = base.group_present, base.group_effort
+    mean_effort = effort_gg.sum(axis=1) / np.maximum(present_gg.sum(axis=1), 1)
+
+    cal = calibration_hauls(hauls)
+    cal = cal[cal["pair_id"].isin(group_index) & cal["gear"].isin(gear_index)][["haul_id", "pair_id", "gear", "effort"]]
+    species = [s for s in base.species]
+    species_index = {s: i for i, s in enumerate(species)}
+    n_species = len(species)
+
+    # Measured fraction of every calibration haul x species.
+    c = counts.merge(cal, on="haul_id", how="inner")
+    c = c[c["species"].isin(species_index)]
+    ln = lengths.merge(cal[["haul_id"]], on="haul_id", how="inner")
+    measured = ln.groupby(["haul_id", "species"])["n"].sum().rename("measured")
+    c = c.merge(measured, left_on=["haul_id", "species"], right_index=True, how="left")
+    c["measured"] = c["measured"].fillna(0.0)
+    cnt = c["count"].to_numpy(dtype=float)
+    f = np.where(cnt > 0, c["measured"].to_numpy(dtype=float) / np.where(cnt > 0, cnt, 1.0), 1.0)
+    no_len = (cnt > 0) & (c["measured"].to_numpy() == 0)
+    gi = c["pair_id"].map(group_index).to_numpy()
+    gg = c["gear"].map(gear_index).to_numpy()
+    si = c["species"].map(species_index).to_numpy()
+    weight = np.zeros((n_groups, n_species, n_gears))
+    np.add.at(weight, (gi, si, gg), c["effort"].to_numpy(dtype=float) / mean_effort[gi] * f)
+    present = present_gg[:, None, :] & (weight > 0)
+
+    # Measured fish per group x species x class x gear.
+    ln = ln.merge(cal, on="haul_id", how="left")
+    ln = ln[ln["species"].isin(species_index)]
+    ln["lower"] = length_class_of(ln["length_mm"].to_numpy(), bin_mm)
+    usable_gs = present.sum(axis=2) >= 2  # (group, species): a split to model
+    lg = ln["pair_id"].map(group_index).to_numpy()
+    ls = ln["species"].map(species_index).to_numpy()
+    lgear = ln["gear"].map(gear_index).to_numpy()
+    in_use = usable_gs[lg, ls] & present[lg, ls, lgear]
+
+    classes, species_range, strata = {}, {}, []
+    fish_outside = {}
+    for s, sp in enumerate(species):
+        sel = in_use & (ls == s)
+        per_class = ln.loc[sel].groupby("lower")["n"].sum()
+        ok = per_class[per_class >= min_class_fish].index.to_numpy(dtype=float)
+        if len(ok) == 0:
+            fish_outside[sp] = int(per_class.sum())
+            continue
+        lo, hi = float(ok.min()), float(ok.max())
+        lowers = np.round(np.arange(lo, hi + bin_mm / 2, bin_mm), 9)
+        classes[sp] = [float(x) for x in lowers]
+        species_range[sp] = [lo, float(hi + bin_mm)]
+        fish_outside[sp] = int(per_class[(per_class.index < lo - 1e-9) | (per_class.index > hi + 1e-9)].sum())
+        strata += [(s, x) for x in lowers]
+    stratum_species = np.array([s for s, _ in strata], dtype=int)
+    stratum_length = np.array([x for _, x in strata], dtype=float)
+    labels = [stratum_label(species[s], x) for s, x in strata]
+    stratum_of = {(s, round(x, 6)): k for k, (s, x) in enumerate(strata)}
+    n_strata = len(strata)
+
+    key = [stratum_of.get((s, round(x, 6)), -1) for s, x in zip(ls, ln["lower"].to_numpy())]
+    key = np.asarray(key, dtype=int)
+    keep = in_use & (key >= 0)
+    full = np.zeros((n_groups, max(n_strata, 1), n_gears))
+    np.add.at(full, (lg[keep], key[keep], lgear[keep]), ln["n"].to_numpy(dtype=float)[keep])
+    full = full[:, :n_strata]
+    totals = full.sum(axis=2)
+    cg, ck = np.nonzero(totals > 0)
+    cs = stratum_species[ck] if n_strata else np.zeros(0, dtype=int)
+    pres = present[cg, cs]
+    w = np.where(pres, weight[cg, cs], 0.0)
+    eff = np.where(pres, effort_gg[cg], 0.0)
+
+    labels_combo = ["+".join(g for g, p in zip(gears, row) if p) for row in pres]
+    combos = sorted(set(labels_combo)) or list(base.combos)
+    combo = np.array([combos.index(x) for x in labels_combo], dtype=int)
+
+    species_pool = np.asarray(base.species_pool, dtype=int)
+    cells = Cells(
+        reference=reference,
+        gears=list(gears),
+        species=labels,
+        groups=list(groups),
+        combos=combos,
+        pool_groups=list(base.pool_groups),
+        counts=np.rint(full[cg, ck]).astype(np.int64),
+        present=pres,
+        weight=w,
+        effort=eff,
+        cell_group=cg.astype(int),
+        cell_species=ck.astype(int),
+        cell_combo=combo,
+        species_pool=species_pool[stratum_species] if n_strata else np.zeros(0, dtype=int),
+        effort_unit=dict(base.effort_unit),
+        group_present=present_gg,
+        group_effort=effort_gg,
+    )
+    no_len_frame = c.loc[no_len]
+    report = {
+        "bin_mm": float(bin_mm),
+        "n_groups": n_groups,
+        "n_cells": int(len(cg)),
+        "no_lengths_haul_species": int(no_len.sum()),
+        "no_lengths_fish": int(no_len_frame["count"].sum()),
+        "no_lengths_by_species": {str(k): int(v) for k, v in no_len_frame.groupby("species").size().items()},
+        "fish_outside_range": fish_outside,
+        "species_without_range": [sp for sp in species if sp not in classes],
+        "measured_fish_used": int(cells.counts.sum()),
+        "unconnected_gears": base.report.get("unconnected_gears", []),
+        "single_gear_groups_dropped": base.report.get("single_gear_groups_dropped", 0),
+    }
+    cells.report = dict(report)
+    return LengthCells(cells=cells, species=species, stratum_species=stratum_species, stratum_length=stratum_length,
+                       bin_mm=float(bin_mm), species_range=species_range, classes=classes,
+                       input_resolution=resolution,
+                       species_pool=species_pool, report=report)

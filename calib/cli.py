@@ -126,6 +126,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="change a status threshold, e.g. --status-rule fail_rhat=1.1 (repeatable). Names: "
                         "fail_rhat, fail_ess_bulk, fail_prior_ratio, warn_rhat, warn_ess, "
                         "warn_on_divergences, ppp_low, ppp_high; defaults in docs/methods.md")
+    p.add_argument("--length-bin", type=float, default=None, metavar="MM",
+                   help="fit factors that change with length: width of the length classes in mm (e.g. 10). "
+                        "Needs --lengths. Each species x gear gets a smooth curve of the factor over length "
+                        "and factors.csv one row per length class, only over the lengths the calibration "
+                        "measured. Classes never split the classes the lengths were recorded in")
+    p.add_argument("--length-min-fish", type=int, default=1, metavar="N",
+                   help="with --length-bin: a species' calibrated length range runs from its first to its "
+                        "last length class with at least N measured fish")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
     from calib.convert import add_convert_parser
@@ -218,6 +226,7 @@ def _cmd_fit(args) -> int:
         overdispersion=args.overdispersion, pooling=args.pooling, species_groups=args.species_groups,
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
         n_boot=args.bootstrap_reps, rules=_status_rules(args.status_rule), progressbar=not args.quiet,
+        length_bin=args.length_bin, length_min_fish=args.length_min_fish,
     )
     factor_set.save(args.out)
     print(factor_set.summary())
@@ -267,7 +276,14 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
     interval = getattr(args, "interval", None)
     if interval is not None and not 0 < interval < 1:
         parser.error("--interval must be between 0 and 1, e.g. 0.9 for a 90% interval")
-    for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups"):
+    if getattr(args, "length_bin", None) is not None:
+        if not args.length_bin > 0:
+            parser.error("--length-bin must be a positive number of mm, e.g. 10")
+        if args.lengths is None:
+            parser.error("--length-bin needs --lengths FILE (the measured fish)")
+        if args.method != "hierarchical" or args.pooling != "partial":
+            parser.error("--length-bin works with --method hierarchical and --pooling partial only")
+    for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups", "length_min_fish"):
         value = getattr(args, name, None)
         if value is not None and value < (0 if name == "tune" else 1):
             parser.error(f"--{name.replace('_', '-')} must be a positive whole number")

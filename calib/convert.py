@@ -32,6 +32,13 @@ they are tested (a record gets the first that applies):
     factor_fail         its status is ``fail`` (converted, with factor_status 'fail', when
                         ``allow_unconverged``)
     effort_unit         the haul's effort unit differs from the one the factor was fitted with
+    no_lengths          (length factor sets) the catch is > 0 but the haul x species has no lengths
+    outside_length_range (length factor sets) measured fish outside the species' calibrated length
+                        range (converted with the nearest class and flagged when
+                        ``outside_lengths="nearest"``)
+
+With a factor set fitted by length (``calib fit --length-bin``) and the survey's ``lengths`` table,
+records are converted per length class and summed per haul x species (:mod:`calib.length_convert`).
 
 A zero of a species x gear without a usable factor is rejected too, not passed as zero:
 keeping that gear's zeros while rejecting its catches would bias any mean downward.
@@ -74,7 +81,7 @@ CSV_MAX_ROWS = 1_000_000  # records.csv is written too when there are at most th
 ADDED_COLUMNS = ["species", "count", "cpue", "cpue_ref_median", "cpue_ref_lower", "cpue_ref_upper",
                  "factor_id", "factor_gear", "factor_species", "factor_status", "domain_flag"]
 REJECT_CODES = ("not_recorded", "no_factor", "not_species_level", "no_draws", "draws_not_finite",
-                "factor_fail", "effort_unit")
+                "factor_fail", "effort_unit", "no_lengths", "outside_length_range")
 REJECT_LABELS = {
     "not_recorded": "species not recorded by the haul's source that year",
     "no_factor": "no factor for that species x gear",
@@ -83,6 +90,8 @@ REJECT_LABELS = {
     "draws_not_finite": "factor draws not finite",
     "factor_fail": "factor status fail",
     "effort_unit": "effort unit differs from the factor's",
+    "no_lengths": "catch > 0 without lengths (length factors)",
+    "outside_length_range": "lengths outside the calibrated length range",
 }
 _CODE = {name: i + 1 for i, name in enumerate(REJECT_CODES)}
 DRAW_COLUMNS = ["species", "gear", "draw", "factor", "posterior_chain", "posterior_draw"]
@@ -307,6 +316,8 @@ class Conversion:
     manifest: dict
     notes: list[str] = field(default_factory=list)
     store: "_RecordStore | None" = field(default=None, repr=False)
+    length_factor_draws: pd.DataFrame | None = None
+    record_lengths: pd.DataFrame | None = None
     _records: pd.DataFrame | None = field(default=None, init=False, repr=False)
 
     @property
@@ -337,6 +348,10 @@ class Conversion:
         ``count / hauls.effort[haul]``; its factor_species and factor_gear are its species and
         its haul's gear.
         """
+        if self.manifest["counts"].get("length_converted"):
+            raise ValueError("this conversion holds records converted by length class: each has its own mix of "
+                             "class factors, so they have no single species x gear factor draw; series and trend "
+                             "do not handle length-converted records yet")
         st = self.store
         return {"hauls": st.hauls, "haul": st.haul, "species": st.species_code, "count": st.count,
                 "factor": st.factor, "species_labels": list(st.species), "factor_status": list(st.factor_status),
@@ -369,6 +384,9 @@ class Conversion:
             lines.append(f"    {REJECT_LABELS[code]}: {n}")
         lines.append(f"  outside the calibration's domain (flagged in domain_flag, still converted): "
                      f"{c['domain_flagged']}")
+        if c.get("length_converted"):
+            lines.append(f"  converted length class by length class (factors by length, "
+                         f"{m['length_bin_mm']:g}-mm classes): {c['length_converted']}")
         if c.get("unconverged_converted"):
             lines.append(f"  converted with a 'fail' factor (--allow-unconverged): {c['unconverged_converted']}")
         thinning = f"a random subset, seed {d['seed']}" if d["thinned"] else "all of them"
@@ -405,6 +423,9 @@ class Conversion:
             _csv_ready(self.rejected).to_csv(tmp / "rejected.csv", index=False, float_format="%.6g")
             self.factor_draws.to_parquet(tmp / "factor_draws.parquet", index=False)
             self.factors.to_csv(tmp / "factors_used.csv", index=False, float_format="%.6g")
+            if self.length_factor_draws is not None:
+                self.length_factor_draws.to_parquet(tmp / "length_factor_draws.parquet", index=False)
+                self.record_lengths.to_csv(tmp / "record_lengths.csv", index=False, float_format="%.6g")
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
 
@@ -429,6 +450,7 @@ class _RecordStore:
     factor_status: list[str]  # (k,)
     factor_id: str
     haul_flag: np.ndarray  # (n_hauls,) domain flag text of each haul ('' inside)
+    record_flag: np.ndarray | None = None  # (n,) extra flag text per record ('' none), e.g. nearest length class
     _haul_columns: dict = field(default_factory=dict, repr=False)  # column -> haul-level codes or array
 
     def __len__(self) -> int:
@@ -494,6 +516,12 @@ class _RecordStore:
                 out[c] = _categories(j, self.factor_status)
             elif c == "domain_flag":
                 out[c] = self._from_hauls("domain_flag", hp)
+                if self.record_flag is not None:
+                    extra = self.record_flag[sl]
+                    base = np.asarray(out[c], dtype=object)
+                    both = (base != "") & (extra != "")
+                    merged = np.where(both, base + "; " + extra, np.where(extra != "", extra, base))
+                    out[c] = pd.Categorical(merged)
         return pd.DataFrame(out, index=pd.RangeIndex(n), copy=False)  # no consolidating copy
 
     def write_parquet(self, path: Path, rows: int = PARQUET_SLICE_ROWS) -> None:
@@ -573,7 +601,7 @@ def _input_hashes(files: dict[str, str]) -> dict:
 
 def convert(factors, hauls, catches=None, *, species_recorded=None, species_names=None,
             draws: int | None = None, allow_unconverged: bool = False, interval: float | None = None,
-            seed: int = 0) -> Conversion:
+            seed: int = 0, lengths=None, outside_lengths: str = "reject") -> Conversion:
     """Express survey records in reference-gear units, draw by draw.
 
     Parameters
@@ -590,6 +618,10 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         factor_status) instead of rejecting their records.
     interval : central interval level of cpue_ref_lower/upper; default the factor set's.
     seed : seed of the draw subset.
+    lengths : optional path to the survey's lengths table (haul_id, species, length_mm, n). With a
+        factor set fitted by length, records are converted per length class (module docstring).
+    outside_lengths : "reject" (default: records with fish outside a species' calibrated length
+        range go to rejected.csv) or "nearest" (converted with the nearest class, flagged).
 
     Returns
     -------
@@ -613,8 +645,20 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         raise ValueError(f"interval must be between 0 and 1 (e.g. 0.9), not {interval}")
     if draws is not None and (int(draws) != draws or draws < 1):
         raise ValueError(f"draws must be a positive whole number, not {draws}")
+    from calib.length_convert import OUTSIDE
+
+    if outside_lengths not in OUTSIDE:
+        raise ValueError(f"outside_lengths must be one of {OUTSIDE}, not {outside_lengths!r}")
     tables = hauls if isinstance(hauls, Tables) else load_tables(
-        hauls, catches, species_recorded=species_recorded, species_names=species_names)
+        hauls, catches, lengths, species_recorded=species_recorded, species_names=species_names)
+    by_length = "length" in fs.idata.posterior["theta"].dims
+    if by_length and tables.lengths is not None:
+        from calib.length_convert import survey_length_problems
+
+        problems = survey_length_problems(tables.lengths, float(fs.manifest["lengths"]["bin_mm"]),
+                                          tables.files.get("lengths") or "lengths")
+        if problems:
+            raise InputError(problems)
     reference = fs.reference
     posterior_file = str(Path(factor_dir) / "posterior.nc") if factor_dir else "factor set posterior"
 
@@ -634,11 +678,15 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     effort = h["effort"].to_numpy(dtype=float)
 
     # --- draws: one subset of posterior samples, shared by every factor
-    theta = fs.idata.posterior["theta"].transpose("chain", "draw", "gear", "species")
+    theta = fs.idata.posterior["theta"]
     n_chain, n_draw = theta.sizes["chain"], theta.sizes["draw"]
     n_total = n_chain * n_draw
     idx = _select_draws(n_total, draws, seed, posterior_file)
-    theta_all = theta.values.reshape(n_total, theta.sizes["gear"], theta.sizes["species"])
+    if by_length:  # length classes only: no species-level draws (see calib.length_convert)
+        theta_all = None
+    else:
+        theta = theta.transpose("chain", "draw", "gear", "species")
+        theta_all = theta.values.reshape(n_total, theta.sizes["gear"], theta.sizes["species"])
     gpos = {str(g): i for i, g in enumerate(theta.coords["gear"].values)}
     post_species = [str(s) for s in theta.coords["species"].values]
     spos = {s: i for i, s in enumerate(post_species)}
@@ -673,6 +721,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     c_q = np.full((k, 3), np.nan)
     c_why = np.full(k, "", dtype=object)  # the factor table's reason, quoted in rejections
     c_key = []
+    c_length = np.zeros(k, dtype=bool)  # converted per length class (calib.length_convert)
     used_draws: dict[int, np.ndarray] = {}
     for j, cc in enumerate(ucombo):
         g, s = gears_all[cc // n_sp], species_all[cc % n_sp]
@@ -685,6 +734,12 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
             row = row_of.get((s, g))
             if row is None:
                 c_code[j] = _CODE["not_species_level" if (s, g) in any_row else "no_factor"]
+                if by_length and (s, g) in any_row:
+                    c_length[j] = True
+                    units = table.loc[(table["species"] == s) & (table["gear"] == g), "effort_unit"].dropna()
+                    c_unit[j] = str(units.iloc[0]) if len(units) else None
+                    if c_unit[j] is not None:
+                        c_need[j] = units_all.index(c_unit[j]) if c_unit[j] in units_all else len(units_all)
                 continue
             c_status[j] = str(row["status"])
             c_why[j] = "" if pd.isna(row.get("reason")) else str(row.get("reason"))
@@ -714,6 +769,15 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         fill = (code == 0) & (combo_code != 0)
         code[fill] = combo_code[fill]
         del combo_code, fill
+    # records of species x gears with length-class factors only: converted per length class
+    cand = np.flatnonzero(c_length[inv] & (code == _CODE["not_species_level"])) if c_length.any() else np.zeros(0, int)
+    lconv = None
+    if len(cand) and tables.lengths is not None:
+        from calib.length_convert import convert_by_length
+
+        lconv = convert_by_length(fs, tables, h, hp[cand], sc[cand], species_all, count[cand], idx, probs,
+                                  allow_unconverged=allow_unconverged, outside=outside_lengths)
+        code[cand] = np.array([0 if c == "" else _CODE[c] for c in lconv.code], dtype=np.int8)
     # effort units: a record-level check only when some gear has hauls in a unit its factor was
     # not fitted with (decided on the few gear x unit pairs present)
     n_units = max(len(units_all), 1)
@@ -726,6 +790,26 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         del need
     ok = code == 0
     all_ok = bool(ok.all())
+    n_combos = k  # species x gear entries; length-converted records get one entry each after them
+    record_flag = None
+    if lconv is not None:
+        # Each length-converted record has its own effective factor (its length composition's mix
+        # of class factors), so it gets its own row in the store's quantile table; the class draws
+        # themselves are kept once per class (lconv.draws).
+        orig = inv[cand].astype(np.int64)
+        inv = inv.astype(np.int64)
+        inv[cand] = k + np.arange(len(cand))
+        c_q = np.vstack([c_q, lconv.quantiles])
+        c_status = np.concatenate([c_status, lconv.status.astype(object)])
+        c_key = c_key + [c_key[j] for j in orig]
+        c_unit = np.concatenate([c_unit, c_unit[orig]])
+        c_why = np.concatenate([c_why, c_why[orig]])
+        k = k + len(cand)
+        rflag = np.full(n_in, "", dtype=object)
+        rflag[cand] = lconv.flag
+        record_flag = rflag[ok]
+        if not any(record_flag):
+            record_flag = None
 
     # --- converted records (kept lean; columns are built on demand, see _RecordStore)
     hp_ok, j_ok = (hp, inv) if all_ok else (hp[ok], inv[ok])
@@ -763,7 +847,9 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     store = _RecordStore(hauls=h, haul=hp_ok, species_code=sc if all_ok else sc[ok],
                          species=list(species_all), count=count if all_ok else count[ok], factor=_small_int(j_ok, k),
                          factor_quantiles=c_q, factor_status=[str(x) for x in c_status], factor_id=fs.id,
-                         haul_flag=flag_h)
+                         haul_flag=flag_h, record_flag=record_flag)
+    if record_flag is not None:
+        flagged = flagged | (record_flag != "")
 
     # --- rejected records, each with its reason
     bad = ~ok
@@ -779,7 +865,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     # --- factors used and their draws
     rows, draw_frames = [], []
     flagged_used = np.bincount(j_ok[flagged], minlength=k)
-    for j in np.flatnonzero(counts_used):
+    for j in np.flatnonzero(counts_used[:n_combos]):
         s, g = c_key[j]
         rows.append({"species": s, "gear": g, "factor_status": c_status[j], "effort_unit": c_unit[j] or "",
                      "factor_median": c_q[j, 1], "factor_lower": c_q[j, 0], "factor_upper": c_q[j, 2],
@@ -788,14 +874,36 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         draw_frames.append(pd.DataFrame({"species": s, "gear": g, "draw": np.arange(len(idx)),
                                          "factor": used_draws[j], "posterior_chain": idx // n_draw,
                                          "posterior_draw": idx % n_draw}))
-    factors_used = pd.DataFrame(rows, columns=["species", "gear", "factor_status", "effort_unit", "factor_median",
-                                               "factor_lower", "factor_upper", "n_draws", "n_records",
-                                               "n_domain_flagged"])
+    if lconv is not None and len(lconv.draws):
+        # length classes: one row per species x gear x class with its factor over the draws used
+        cq = lconv.draws.groupby(["species", "gear", "length_mm"])["factor"].quantile(probs).unstack()
+        st_of = fs.table.set_index(["species", "gear", "length_mm"])[["status", "effort_unit"]]
+        for s_, g_, L, n_rec in lconv.class_use.itertuples(index=False):
+            if (s_, g_, L) not in cq.index or n_rec == 0:
+                continue
+            st_row = st_of.loc[(s_, g_, L)] if (s_, g_, L) in st_of.index else None
+            rows.append({"species": s_, "gear": g_, "length_mm": L,
+                         "factor_status": "" if st_row is None else st_row["status"],
+                         "effort_unit": "" if st_row is None else st_row["effort_unit"],
+                         "factor_median": cq.loc[(s_, g_, L)].iloc[1], "factor_lower": cq.loc[(s_, g_, L)].iloc[0],
+                         "factor_upper": cq.loc[(s_, g_, L)].iloc[2], "n_draws": len(idx), "n_records": n_rec,
+                         "n_domain_flagged": np.nan})
+    factors_used = pd.DataFrame(rows, columns=["species", "gear", "length_mm", "factor_status", "effort_unit",
+                                               "factor_median", "factor_lower", "factor_upper", "n_draws",
+                                               "n_records", "n_domain_flagged"])
     factor_draws = (pd.concat(draw_frames, ignore_index=True) if draw_frames
                     else pd.DataFrame({c: pd.Series(dtype="float" if c == "factor" else "int64")
                                        for c in DRAW_COLUMNS}).astype({"species": "str", "gear": "str"}))
     factor_draws = factor_draws[DRAW_COLUMNS]
 
+    length_draws = lconv.draws if lconv is not None else None
+    record_lengths = lconv.record_lengths if lconv is not None else None
+    if not by_length and tables.lengths is not None:
+        notes.append("lengths were given but the factor set's factors do not depend on length: the lengths "
+                     "were checked and not used")
+    if by_length and tables.lengths is None:
+        notes.append("the factor set's factors depend on length but no survey lengths were given (--lengths): "
+                     "its species x gears cannot be converted")
     n_conv, n_rej = len(store), len(rej)
     if n_conv + n_rej != n_in:  # pragma: no cover - an internal error, never expected
         raise AssertionError(f"records in {n_in} != converted {n_conv} + rejected {n_rej}")
@@ -817,11 +925,14 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
             "reference_pass_through": per_status["reference"],
             "unconverged_converted": per_status["fail"],
             "domain_flagged": int(flagged.sum()),
+            "length_converted": int((ok[cand]).sum()) if lconv is not None else 0,
         },
         "draws": {"available": int(n_total), "used": int(len(idx)), "thinned": draws is not None,
                   "seed": int(seed) if draws is not None else None},
         "interval": float(interval),
         "allow_unconverged": bool(allow_unconverged),
+        "outside_lengths": outside_lengths if by_length else None,
+        "length_bin_mm": float(fs.manifest["lengths"]["bin_mm"]) if by_length else None,
         "domain": {"source": domain_source if domain else None, **(domain or {})},
         "notes": notes,
         "versions": software_versions(),
@@ -830,7 +941,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         json.dumps(manifest, sort_keys=True, default=str).encode()).hexdigest()[:16]
     manifest["timestamp"] = utc_timestamp()
     return Conversion(rejected=rej, factor_draws=factor_draws, factors=factors_used, manifest=manifest,
-                      notes=notes, store=store)
+                      notes=notes, store=store, length_factor_draws=length_draws, record_lengths=record_lengths)
 
 
 def _text_codes(values: pd.Series) -> tuple[np.ndarray, list[str]]:
@@ -911,6 +1022,13 @@ def _reason_texts(h: pd.DataFrame, hp: np.ndarray, code: np.ndarray, j: np.ndarr
         elif name == "factor_fail":
             t = (f"the factor for '{s}' with '{g}' has status fail{why}; fix the fit, or convert anyway with "
                  "--allow-unconverged (the records are then marked factor_status 'fail')")
+        elif name == "no_lengths":
+            t = (f"the factors for '{s}' with '{g}' depend on length, but this haul has no lengths for it: "
+                 "add its measured fish to the lengths table (--lengths)")
+        elif name == "outside_length_range":
+            t = (f"some measured '{s}' lie outside the length range the factors for '{g}' were calibrated on "
+                 f"(factor set {factor_id}, manifest 'lengths'): convert with --outside-lengths nearest to use "
+                 "the nearest class (flagged in domain_flag), or calibrate over those lengths")
         else:  # effort_unit
             want, have = c_unit[j[r]], units_all[u_h[hp[r]]]
             t = (f"effort is in '{have}' but the factor for gear '{g}' was fitted with effort in '{want}': "
@@ -959,6 +1077,14 @@ def add_convert_parser(sub, formatter_class=argparse.RawDescriptionHelpFormatter
     p.add_argument("--seed", type=int, default=0, help="seed of the --draws subset")
     p.add_argument("--interval", type=float, default=None,
                    help="central interval level for cpue_ref_lower/upper (default: the factor set's)")
+    p.add_argument("--lengths", metavar="FILE", default=None,
+                   help="optional lengths table of the survey records (haul_id, species, length_mm, n). Needed "
+                        "when the factors depend on length (fitted with --length-bin): each record is converted "
+                        "length class by length class, the measured fish raised to the whole catch")
+    p.add_argument("--outside-lengths", choices=["reject", "nearest"], default="reject",
+                   help="records with measured fish outside the lengths the factors were calibrated on: "
+                        "'reject' sends them to rejected.csv; 'nearest' converts those fish with the factor of "
+                        "the nearest calibrated length class and notes it in domain_flag")
     p.add_argument("--allow-unconverged", action="store_true",
                    help="convert with factors whose status is fail instead of rejecting their records "
                         "(they are marked factor_status 'fail')")
@@ -972,11 +1098,13 @@ def run_convert_command(args) -> int:
     """
     conversion = convert(args.factors, args.hauls, args.catches, species_recorded=args.species_recorded,
                          species_names=args.species_names, draws=args.draws,
-                         allow_unconverged=args.allow_unconverged, interval=args.interval, seed=args.seed)
+                         allow_unconverged=args.allow_unconverged, interval=args.interval, seed=args.seed,
+                         lengths=args.lengths, outside_lengths=args.outside_lengths)
     out = conversion.save(args.out)
     print(conversion.summary())
     written = ["records.parquet"] + (["records.csv"] if conversion.n_records <= CSV_MAX_ROWS else []) + [
-        "rejected.csv", "factor_draws.parquet", "factors_used.csv", "manifest.json"]
+        "rejected.csv", "factor_draws.parquet", "factors_used.csv", "manifest.json"] + (
+        ["length_factor_draws.parquet", "record_lengths.csv"] if conversion.length_factor_draws is not None else [])
     print(f"\nrows in {conversion.n_in} = converted {conversion.n_converted} + rejected {conversion.n_rejected}")
     print(f"Wrote {out}/: {', '.join(written)}")
     return 0

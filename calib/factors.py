@@ -17,7 +17,7 @@ from __future__ import annotations
 import hashlib
 import json
 import platform
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -47,6 +47,9 @@ FACTOR_COLUMNS = [
     "status",
     "reason",
 ]
+
+# Optional result tables a factor set may carry (saved as NAME.csv).
+EXTRA_TABLES = ("length_split",)
 
 CAUTION = (
     "Conversion factors hold only for the gears, size range, habitats and seasons of the "
@@ -126,6 +129,8 @@ class FactorSet:
     checks: pd.DataFrame
     idata: object
     manifest: dict
+    # Further result tables saved as NAME.csv beside factors.csv (e.g. length_split for length fits).
+    extra_tables: dict = field(default_factory=dict)
 
     @property
     def id(self) -> str:
@@ -140,18 +145,37 @@ class FactorSet:
         if gear == self.reference:
             n = self.idata.posterior.sizes["chain"] * self.idata.posterior.sizes["draw"]
             return np.ones(n)
-        theta = self.idata.posterior["theta"].sel(species=species, gear=gear)
+        theta = self.idata.posterior["theta"]
+        if "length" in theta.dims:
+            raise ValueError("this factor set's factors depend on length: use "
+                             "calib.length_fit.length_theta_draws(factor_set, species, gear)")
+        theta = theta.sel(species=species, gear=gear)
         return np.exp(-theta.values.reshape(-1))
 
     def summary(self) -> str:
         """Plain-text summary: what was fitted and each factor with its interval and status."""
         m = self.manifest
         level = int(round(100 * m["settings"]["interval"]))
-        lines = [
-            f"Factor set {self.id}  (method: {m['method']}, reference gear: {self.reference})",
-            f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "
-            f"with a non-zero total; {m['cells']['zero_total_cells_dropped']} zero-total cells carried no information.",
-        ]
+        lines = [f"Factor set {self.id}  (method: {m['method']}, reference gear: {self.reference})"]
+        lengths = m.get("lengths")
+        if lengths:
+            lines.append(
+                f"  factors by length: {lengths['bin_mm']:g}-mm classes; {m['cells']['n_groups']} calibration groups, "
+                f"{m['cells']['n_cells']} group x species x length-class cells with measured fish.")
+            lines.append(
+                f"  left out of the length model: {lengths['no_lengths_haul_species']} haul x species with a catch "
+                f"but no lengths ({lengths['no_lengths_fish']} fish); measured fish outside the calibrated ranges: "
+                f"{sum(lengths['fish_outside_range'].values())}.")
+            for sp, (lo, hi) in lengths["calibrated_range_mm"].items():
+                lines.append(f"  calibrated lengths of {sp}: {lo:g} to {hi:g} mm")
+            if lengths.get("species_without_range"):
+                lines.append("  no length factors (too few measured fish in groups with two or more gears): "
+                             + ", ".join(lengths["species_without_range"]))
+        else:
+            lines.append(
+                f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "
+                f"with a non-zero total; {m['cells']['zero_total_cells_dropped']} zero-total cells carried no "
+                "information.")
         if m.get("divergences") is not None:
             lines.append(f"  divergent transitions: {m['divergences']}")
         counts = self.table["status"].value_counts()
@@ -159,13 +183,16 @@ class FactorSet:
             "  status: " + ", ".join(f"{counts.get(s, 0)} {s}" for s in ("ok", "warn", "fail"))
         )
         lines.append("")
-        lines.append(f"  {'species':<24} {'gear':<22} {'factor':>8}  {level}% interval       status")
+        by_length = bool(lengths)
+        head = f"  {'species':<24} {'gear':<22} " + (f"{'length':>8} " if by_length else "")
+        lines.append(head + f"{'factor':>8}  {level}% interval       status")
         for r in self.table.itertuples():
             if np.isfinite(r.factor_median):
                 est = f"{r.factor_median:8.3g}  {r.factor_lower:7.3g} to {r.factor_upper:<8.3g}"
             else:
                 est = f"{'—':>8}  {'':19}"
-            lines.append(f"  {r.species:<24} {r.gear:<22} {est}  {r.status}")
+            where = f"{r.length_mm:>5g} mm " if by_length else ""
+            lines.append(f"  {r.species:<24} {r.gear:<22} {where}{est}  {r.status}")
         lines.append("")
         lines.append("  factor = expected cpue of the reference gear / cpue of this gear at the same place and time.")
         lines.append("  " + CAUTION)
@@ -182,6 +209,8 @@ class FactorSet:
             self.checks.to_csv(tmp / "checks.csv", index=False, float_format="%.6g")
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
+            for name, frame in self.extra_tables.items():
+                frame.to_csv(tmp / f"{name}.csv", index=False, float_format="%.6g")
         return directory
 
     @classmethod
@@ -214,7 +243,9 @@ class FactorSet:
                 checks = pd.DataFrame()
         idata = az.from_netcdf(str(directory / "posterior.nc"), engine="h5netcdf")
         manifest = json.loads((directory / "manifest.json").read_text())
-        return cls(table=table, checks=checks, idata=idata, manifest=manifest)
+        extra = {name: pd.read_csv(directory / f"{name}.csv") for name in EXTRA_TABLES
+                 if (directory / f"{name}.csv").is_file()}
+        return cls(table=table, checks=checks, idata=idata, manifest=manifest, extra_tables=extra)
 
 
 def load_factors(directory: str | Path) -> FactorSet:

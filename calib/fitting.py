@@ -72,6 +72,8 @@ def fit(
     n_boot: int = 1000,
     rules=None,
     progressbar: bool = True,
+    length_bin: float | None = None,
+    length_min_fish: int = 1,
 ) -> FactorSet:
     """Fit conversion factors from calibration groups.
 
@@ -91,6 +93,11 @@ def fit(
     draws, tune, chains, seed : sampler settings (per chain); ``n_boot`` for ratio.
     interval : central interval level for factor_lower / factor_upper (e.g. 0.9).
     rules : ``calib.diagnostics.StatusRules`` to override the default status rules.
+    length_bin : width (mm) of length classes; when given, theta is a smooth function of length
+        per species x gear (P-spline, :mod:`calib.length_fit`) fitted to the lengths table, and
+        factors.csv gets one row per species x gear x length class. Hierarchical method only.
+    length_min_fish : with ``length_bin``, a species' calibrated length range runs from its first
+        to its last class with at least this many measured fish.
 
     Returns
     -------
@@ -119,6 +126,15 @@ def fit(
                         "add a row for it (species, group) so it is pooled with the right group")
                 for s in unlisted
             ])
+    if length_bin is not None:
+        if method != "hierarchical" or pooling != "partial":
+            raise ValueError("--length-bin works with the hierarchical method and partial pooling only")
+        from calib.length_fit import fit_by_length
+
+        return fit_by_length(tables, counts, reference=reference, length_bin=length_bin, groups_map=groups_map,
+                             overdispersion=overdispersion, draws=draws, tune=tune, chains=chains, seed=seed,
+                             interval=interval, rules=rules, progressbar=progressbar,
+                             min_class_fish=length_min_fish)
     cells = cells_mod.build_cells(tables.hauls, counts, reference, species_groups=groups_map)
     rules = rules or diagnostics.StatusRules()
 

@@ -398,7 +398,7 @@ def plot_forest(table, *, reference: str | None = None):
     lines the ``interval`` (e.g. 90%) intervals, on a log scale (a factor of 2 and of 1/2
     lie equally far from 1); colour is the factor's status (``STATUS_COLOURS``). Factors
     that could not be estimated are listed as "not estimable". Length-class rows are left
-    out (see ``plot_length_factor_bands``).
+    out (see ``plot_factor_by_length``).
     """
     from matplotlib.lines import Line2D
 
@@ -574,36 +574,102 @@ def plot_gear_network(combos, *, reference: str | None = None):
     return fig
 
 
-def plot_length_factor_bands(table, *, reference: str | None = None):
-    """Factor by length class for the report, one panel per species, a line and band per gear (log scale).
+def plot_factor_by_length(factors, *, truth=None, species=None, ncols: int = 3):
+    """Factor versus length, one panel per species, one line and band per gear.
 
-    ``table``: a factors.csv frame; only rows with a ``length_mm`` value are drawn (the
-    calibrated length range), at the classes' lower bounds. Bands are the ``interval`` intervals.
-    Without length rows the figure says so. (The length model's own figure, with class
-    mid-points and the truth for recovery checks, lives with that model.)
+    factors : factors.csv of a length factor set (``FactorSet.table``): rows with length_mm (class
+        lower bound, mm), factor_median, factor_lower, factor_upper, interval, status. The line is
+        drawn at class mid-points (lower bound + half the class width, taken from the spacing of
+        the classes); fail rows are marked with an open circle.
+    truth : optional table species, gear, length_mm, factor (e.g. a simulator's ``theta_length``)
+        drawn as a dashed line, for checking recovery.
+    species : optional list of species to draw (default all, in table order).
+    Returns a matplotlib Figure (log factor axis; the line factor = 1 is "same as the reference").
     """
-    rows = table[table["length_mm"].notna()] if "length_mm" in table else table.iloc[0:0]
-    if rows.empty:
-        return _empty_figure("No length-dependent factors in this factor set.")
-    species = sorted(rows["species"].astype(str).unique(), key=str.lower)
-    gears = sorted(rows["gear"].astype(str).unique())
+    import pandas as pd
+
+    t = factors[factors["length_mm"].notna()].copy()
+    names = list(dict.fromkeys(t["species"])) if species is None else list(species)
+    gears = list(dict.fromkeys(t["gear"]))
     colours = categorical_colours(gears)
-    fig, axes = new_figure(len(species), ncols=3, panel_size=(3.0, 2.2))
-    for ax, sp in zip(axes, species):
+    fig, axes = new_figure(max(len(names), 1), ncols=ncols)
+    level = t["interval"].dropna().iloc[0] if t["interval"].notna().any() else None
+    for ax, sp in zip(axes, names):
+        part = t[t["species"] == sp]
         for gear in gears:
-            sub = rows[(rows["species"].astype(str) == sp) & (rows["gear"].astype(str) == gear)]
-            sub = sub.sort_values("length_mm")
-            if sub.empty:
+            g = part[part["gear"] == gear].sort_values("length_mm")
+            if g.empty:
                 continue
-            x = sub["length_mm"].astype(float)
-            ax.fill_between(x, sub["factor_lower"].astype(float), sub["factor_upper"].astype(float),
-                            color=colours[gear], alpha=0.25, linewidth=0)
-            ax.plot(x, sub["factor_median"].astype(float), color=colours[gear], linewidth=1.4, label=gear)
+            steps = np.diff(g["length_mm"].to_numpy(dtype=float))
+            half = float(np.min(steps)) / 2 if len(steps) else 0.0
+            x = g["length_mm"].to_numpy(dtype=float) + half
+            ax.fill_between(x, g["factor_lower"], g["factor_upper"], color=colours[gear], alpha=0.25, linewidth=0)
+            ax.plot(x, g["factor_median"], color=colours[gear], linewidth=1.6, label=gear)
+            fail = (g["status"] == "fail").to_numpy()
+            if fail.any():
+                ax.plot(x[fail], g["factor_median"].to_numpy()[fail], linestyle="none", marker="o",
+                        markerfacecolor="white", markeredgecolor=STATUS_COLOURS["fail"], markersize=4)
+            if truth is not None:
+                tr = pd.DataFrame(truth)
+                tr = tr[(tr["species"] == sp) & (tr["gear"] == gear)].sort_values("length_mm")
+                tr = tr[(tr["length_mm"] >= g["length_mm"].min()) & (tr["length_mm"] <= g["length_mm"].max())]
+                if not tr.empty:
+                    ax.plot(tr["length_mm"].to_numpy(dtype=float) + half, tr["factor"], color=INK, linewidth=1.0,
+                            linestyle="--", label=f"{gear} (truth)")
+        ax.axhline(1.0, color=NEUTRAL, linewidth=0.8)
         ax.set_yscale("log")
-        _plain_log_axis(ax.yaxis)
-        ax.axhline(1.0, color=NEUTRAL, linestyle="--", linewidth=0.8)
+        from matplotlib.ticker import FuncFormatter
+
+        def _minor(v, _):  # label 0.2, 0.3, 0.5, 2, 3, 5, ... only: the others crowd the axis
+            mantissa = round(v / 10 ** np.floor(np.log10(v)), 6) if v > 0 else 0
+            return f"{v:g}" if mantissa in (2, 3, 5) else ""
+
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))  # 1 rather than 10^0
+        ax.yaxis.set_minor_formatter(FuncFormatter(_minor))
+        ax.tick_params(which="minor", labelsize=8)
         ax.set_title(sp, fontsize=9, color=INK)
         ax.set_xlabel("length (mm)", fontsize=8)
-        ax.set_ylabel(f"factor to {reference}" if reference else "factor", fontsize=8)
-    axes[0].legend(fontsize=7, frameon=False)
+        ax.set_ylabel("factor (reference / gear)", fontsize=8)
+    if axes:
+        axes[0].legend(fontsize=7, frameon=False)
+    band = f"{level:.0%} interval" if level is not None else "interval"
+    fig.suptitle(f"Conversion factor by length (median and {band}); open circles: status fail", fontsize=9)
+    return fig
+
+
+def plot_split_by_length(split, *, species=None, ncols: int = 3):
+    """Observed versus fitted share of each gear's catch by length class, one panel per species.
+
+    split : ``length_split.csv`` of a length factor set (``FactorSet.extra_tables["length_split"]``):
+        species, length_mm, gear, n_fish, observed_share, fitted_median, fitted_lower, fitted_upper.
+        Points are the observed shares (size grows with the fish in the class), lines and bands the
+        fitted shares. Reference gear shares are left out (with two gears they are 1 minus the other).
+    Returns a matplotlib Figure.
+    """
+    s = split.copy()
+    names = list(dict.fromkeys(s["species"])) if species is None else list(species)
+    gears = list(dict.fromkeys(s["gear"]))
+    shown = gears[1:] if len(gears) > 1 else gears
+    colours = categorical_colours(gears)
+    fig, axes = new_figure(max(len(names), 1), ncols=ncols)
+    for ax, sp in zip(axes, names):
+        part = s[s["species"] == sp]
+        for gear in shown:
+            g = part[part["gear"] == gear].sort_values("length_mm")
+            if g.empty:
+                continue
+            x = g["length_mm"].to_numpy(dtype=float)
+            ax.fill_between(x, g["fitted_lower"], g["fitted_upper"], color=colours[gear], alpha=0.25, linewidth=0)
+            ax.plot(x, g["fitted_median"], color=colours[gear], linewidth=1.4, label=f"{gear} fitted")
+            size = 6 + 30 * np.sqrt(g["n_fish"].to_numpy(dtype=float) / max(float(part["n_fish"].max()), 1.0))
+            ax.scatter(x, g["observed_share"], s=size, facecolor="white", edgecolor=colours[gear], linewidth=1.0,
+                       label=f"{gear} observed", zorder=3)
+        ax.set_ylim(0, 1)
+        ax.set_title(sp, fontsize=9, color=INK)
+        ax.set_xlabel("length class lower bound (mm)", fontsize=8)
+        ax.set_ylabel("share of the class's fish", fontsize=8)
+    if axes:
+        axes[0].legend(fontsize=7, frameon=False)
+    fig.suptitle("Split of each length class's catch between gears: observed (points) and fitted (bands)",
+                 fontsize=9)
     return fig

@@ -74,6 +74,7 @@ class ReportInputs:
     manifest: dict
     comparison: pd.DataFrame | None = None
     comparison_file: str | None = None
+    length_split: pd.DataFrame | None = None  # length_split.csv of a length factor set
     converted_dir: Path | None = None
     converted_manifest: dict | None = None
     records: pd.DataFrame | None = None
@@ -151,6 +152,8 @@ def read_results(factors, converted=None, series=None, trend=None) -> ReportInpu
         if (fdir / name).is_file():
             inputs.comparison, inputs.comparison_file = _read_csv(fdir / name, problems), name
             break
+    if (fdir / "length_split.csv").is_file():
+        inputs.length_split = _read_csv(fdir / "length_split.csv", problems)
     if cdir is not None:
         inputs.converted_dir = cdir
         inputs.converted_manifest = _read_json(cdir / "manifest.json", problems)
@@ -498,14 +501,18 @@ def _section_length(r: ReportInputs) -> str:
     t = r.factors
     if "length_mm" not in t or not t["length_mm"].notna().any():
         return _p("Not fitted: this factor set has one factor per species and gear over all sizes.")
-    from calib.plots import plot_length_factor_bands
+    from calib.plots import plot_factor_by_length, plot_split_by_length
 
     rows = t[t["length_mm"].notna()]
     out = [_p(f"{len(rows)} factors by length class for {rows['species'].nunique()} species, only inside the "
               f"calibrated length range ({_num(rows['length_mm'].min())} to {_num(rows['length_mm'].max())} mm).")]
-    out.append(_figure(plot_length_factor_bands(t, reference=r.manifest.get("reference")),
+    out.append(_figure(plot_factor_by_length(rows),
                        "Factor by length class: median and interval band per gear, log scale.",
                        "factor by length"))
+    if r.length_split is not None and not r.length_split.empty:
+        out.append(_figure(plot_split_by_length(r.length_split),
+                           "Observed (points) and fitted (line, band) share of each gear's catch by length class.",
+                           "split by length"))
     return "".join(out)
 
 

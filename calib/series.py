@@ -1062,6 +1062,12 @@ def _read_converted(converted, extra=()) -> tuple[pd.DataFrame, pd.DataFrame, di
     except (OSError, ValueError) as err:
         raise InputError([Problem(str(d), None, None, f"the converted files cannot be read ({err})",
                                   "convert again into a new directory", False)]) from None
+    if manifest.get("counts", {}).get("length_converted"):
+        raise InputError([Problem(str(mp), None, None,
+                                  f"{manifest['counts']['length_converted']} records were converted by length class; "
+                                  "series and trend do not handle length-converted records yet (each has its own "
+                                  "mix of class factors)",
+                                  "convert without --lengths using a factor set fitted without --length-bin", False)])
     inputs = {name: {"path": str(p), "sha256": file_sha256(p)} for name, p in
               (("records", rp), ("factor_draws", fp), ("manifest", mp))}
     return records, factor_draws, manifest, str(rp), str(fp), inputs

@@ -40,6 +40,7 @@ import pandas as pd
 
 __all__ = [
     "LengthSpec",
+    "logistic_retention",
     "SimulatedStudy",
     "SimulatedSurvey",
     "simulate_calibration",
@@ -138,6 +139,14 @@ class LengthSpec:
         subsample of the catch; all of them when fewer were caught).
     bin_mm : width (whole mm) of the simulator's length classes; measured individuals get a whole-mm
         length drawn uniformly inside their class.
+    retention : optional mapping gear -> logistic retention curve (l50, sr) in mm, one pair for all
+        species or a mapping species -> (l50, sr); gears not named retain every length. The usual
+        logistic selection curve (Millar & Fryer 1999, Reviews in Fish Biology and Fisheries 9,
+        "Estimating the size-selection curves of towed gears, traps, nets and hooks"):
+        r(l) = 1 / (1 + exp(-2 log(3) (l - l50) / sr)), l50 the length retained with probability
+        0.5 and sr = l75 - l25 the selection range. The length effect of gear g is then
+        log r_g(l) - log r_ref(l) (added to the slope effect, evaluated at class mid-points and
+        normalised as above), so the true factor at length l is exp(-theta_length).
     patchiness_level : ``"species"`` draws one catch rate per haul x species and then gives the caught
         individuals lengths from the gear's catch-at-length distribution, so the *species-level*
         split is exactly Dirichlet-multinomial (gamma patchiness); ``"length_class"`` draws one catch
@@ -151,6 +160,27 @@ class LengthSpec:
     n_measured: int = 30
     bin_mm: int = 5
     patchiness_level: str = "species"
+    retention: Mapping[str, object] | None = None
+
+
+def logistic_retention(length_mm, l50: float, sr: float) -> np.ndarray:
+    """Logistic retention probability at ``length_mm`` (mm) for a gear with 50 % retention length
+    ``l50`` (mm) and selection range ``sr`` = l75 - l25 (mm) (Millar & Fryer 1999, Reviews in Fish
+    Biology and Fisheries 9)."""
+    if sr <= 0:
+        raise ValueError("selection range sr must be > 0 mm")
+    b = 2.0 * math.log(3.0) / float(sr)
+    return 1.0 / (1.0 + np.exp(-b * (np.asarray(length_mm, dtype=float) - float(l50))))
+
+
+def _retention_params(value, species: Sequence[str], gear: str) -> list[tuple[float, float]]:
+    if isinstance(value, Mapping):
+        missing = [s for s in species if s not in value]
+        if missing:
+            raise ValueError(f"LengthSpec.retention[{gear!r}] has no curve for species {missing}")
+        return [tuple(float(x) for x in value[s]) for s in species]
+    l50, sr = (float(x) for x in value)
+    return [(l50, sr)] * len(species)
 
 
 @dataclass
@@ -178,6 +208,11 @@ def _length_grid(spec: LengthSpec, gears: Sequence[str], species: Sequence[str])
         slopes[list(gears).index(gear)] = _per_species(val, species, f"slope_per_10mm[{gear!r}]")
     if np.any(slopes[0] != 0):
         raise ValueError("the reference gear (first in gears) has no length effect by definition")
+    curves: dict[int, list[tuple[float, float]]] = {}
+    for gear, val in (spec.retention or {}).items():
+        if gear not in gears:
+            raise ValueError(f"LengthSpec.retention names an unknown gear {gear!r}")
+        curves[list(gears).index(gear)] = _retention_params(val, species, gear)
     lower, share, delta = [], [], []
     for s in range(len(species)):
         sigma = math.sqrt(math.log1p(cv[s] ** 2))
@@ -189,6 +224,11 @@ def _length_grid(spec: LengthSpec, gears: Sequence[str], species: Sequence[str])
         p = p / p.sum()
         mid = edges[:-1] + bin_mm / 2.0
         d = slopes[:, s][:, None] * (mid[None, :] - median[s]) / 10.0
+        if curves:
+            log_r = np.zeros((len(gears), len(mid)))
+            for g, params in curves.items():
+                log_r[g] = np.log(logistic_retention(mid, *params[s]))
+            d = d + log_r - log_r[0][None, :]
         d = d - np.log((p[None, :] * np.exp(d)).sum(axis=1, keepdims=True))
         lower.append(edges[:-1].astype(int))
         share.append(p)
