@@ -106,6 +106,16 @@ def build_parser() -> argparse.ArgumentParser:
                    help="'none' assumes no tow-to-tow patchiness (plain multinomial); for comparison only")
     p.add_argument("--pooling", choices=["partial", "none"], default="partial",
                    help="'none' fits every species on its own with vague priors")
+    p.add_argument("--design", choices=["paired", "side-by-side"], default="paired",
+                   help="paired: hauls sharing a pair_id are compared (default). side-by-side: gears fished "
+                        "the same sites in the same periods but not as pairs; every haul is placed by its "
+                        "site and period (pair_id ignored) and counts are modelled with a site x period "
+                        "density (negative binomial; --overdispersion none gives Poisson). Only valid if "
+                        "the gears sampled the same animals (not marsh edge vs channel)")
+    p.add_argument("--period-by", choices=["auto", "column", "month", "season", "year"], default="auto",
+                   help="side-by-side: what counts as the same period. auto: the hauls table's 'period' "
+                        "column if it has one, else the month (e.g. 2024-05); season: winter Dec-Feb, "
+                        "spring Mar-May, summer Jun-Aug, autumn Sep-Nov of a year; year: the year")
     p.add_argument("--species-recorded", metavar="FILE", default=None,
                    help="optional table (source, species, year_from, year_to): zeros are completed only "
                         "for species a source recorded")
@@ -207,6 +217,7 @@ def _cmd_fit(args) -> int:
         overdispersion=args.overdispersion, pooling=args.pooling, species_groups=args.species_groups,
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
         n_boot=args.bootstrap_reps, rules=_status_rules(args.status_rule), progressbar=not args.quiet,
+        design=args.design, period_by=args.period_by,
     )
     factor_set.save(args.out)
     print(factor_set.summary())
@@ -241,6 +252,8 @@ def _cmd_demo(args) -> int:
 
 def _check_settings(parser: argparse.ArgumentParser, args) -> None:
     """Settings that parse but make no sense are usage errors (exit 2)."""
+    if getattr(args, "design", "paired") == "side-by-side" and args.method != "hierarchical":
+        parser.error("--design side-by-side is fitted with --method hierarchical only")
     interval = getattr(args, "interval", None)
     if interval is not None and not 0 < interval < 1:
         parser.error("--interval must be between 0 and 1, e.g. 0.9 for a 90% interval")

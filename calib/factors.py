@@ -152,6 +152,14 @@ class FactorSet:
             f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "
             f"with a non-zero total; {m['cells']['zero_total_cells_dropped']} zero-total cells carried no information.",
         ]
+        if m.get("design") == "side-by-side":  # groups are site-periods there
+            c = m["cells"]
+            lines[1] = (f"  side-by-side design, periods by {c['period_by']}: {c['n_hauls']} hauls in "
+                        f"{c['n_site_periods']} site-periods, {c['n_groups']} fished by two or more gears; "
+                        f"{c['hauls_in_single_gear_site_periods']} hauls in single-gear site-periods (kept; "
+                        "no information on the factors).")
+            lines.insert(2, "  site-periods shared per gear pair: " + ", ".join(
+                f"{r['gear_a']}+{r['gear_b']} {r['n_site_periods']}" for r in c["site_periods_per_gear_pair"]))
         if m.get("divergences") is not None:
             lines.append(f"  divergent transitions: {m['divergences']}")
         counts = self.table["status"].value_counts()
