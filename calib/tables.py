@@ -1165,9 +1165,9 @@ def side_by_side_problems(tables: Tables, reference: str | None, period_by: str 
     hf, cf = tables.files["hauls"], tables.files["catches"]
     h_csv, c_csv = tables.is_csv("hauls"), tables.is_csv("catches")
     out: list[Problem] = []
-    if "site" not in hauls.columns:
+    if "site" not in hauls.columns or hauls["site"].map(_is_blank).all():
         out.append(Problem(hf, None, "site", "the side-by-side design places hauls by site and period, but the "
-                           "hauls table has no 'site' column",
+                           "hauls table has no 'site' column (or it is empty)",
                            "add a 'site' column naming where each haul was made (hauls at the same site in the "
                            "same period are compared), or fit paired groups without --design side-by-side", h_csv))
     else:
