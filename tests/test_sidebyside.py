@@ -167,6 +167,7 @@ def test_recovers_known_factors(recovery_fit):
     truth = study.theta.loc[data.gears, data.species].to_numpy()
     covered = (lo[1:] <= truth[1:]) & (truth[1:] <= hi[1:])
     # 8 factors, 90 % intervals: with nominal coverage P(at least 6 covered) = 0.96 (binomial).
+    print(f"recovery: {int(covered.sum())} of 8 true factors inside their 90% intervals")
     assert covered.sum() >= 6, (lo, hi, truth)
     assert float(np.abs(np.asarray(theta.sel(gear="A"))).max()) == 0.0  # reference row zero
     diag = dg.factor_diagnostics(idata, data.cells, ppp=ms.share_check(idata, data, ppc_draws=100, seed=1))
@@ -215,6 +216,8 @@ def test_coverage_over_replicates(recovery_fit):
         hits.append(((lo[1:] <= truth[1:]) & (truth[1:] <= hi[1:])).ravel())
     ms.set_data(model, data)
     share = float(np.concatenate(hits).mean())
+    print(f"coverage: {share:.3f} of {len(np.concatenate(hits))} intervals; per factor "
+          f"{np.mean(hits, axis=0).round(2).tolist()}")
     assert len(hits) == 20
     assert 0.84 <= share <= 0.97, share
 
@@ -236,7 +239,7 @@ def test_fixed_site_effects_poisson_match_statsmodels_glm():
         gear_presence={"B": 0.85, "C": 0.85}, effort={g: (0.6, 1.4) for g in "ABC"}, seed=99)
     data = study.to_data()
     spec = ms.SideBySideSpec(overdispersion="none", site_effect="fixed", pooling="none")
-    idata = ms.sample(ms.build_model(data, spec), draws=1000, tune=600, chains=2, seed=3, progressbar=False,
+    idata = ms.sample(ms.build_model(data, spec), draws=800, tune=500, chains=2, seed=3, progressbar=False,
                       prior_draws=0, log_likelihood=False)
 
     # The same data as a statsmodels Poisson GLM: gear x species effects, one fixed effect per
@@ -262,6 +265,8 @@ def test_fixed_site_effects_poisson_match_statsmodels_glm():
         # 0.25 posterior sd + 3 Monte Carlo se, as in tests/test_model_recovery.py: posterior
         # median vs maximum likelihood differ by a skewness term of order sd / sqrt(counts)
         # (rule of thumb, no source), the vague N(0, 5) prior moves theta by about sd^2 / 25.
+        print(f"glm {labels[k]}: posterior median {median:.4f} sd {sd:.4f} mcse {mcse:.4f}; "
+              f"glm {glm.params[k]:.4f} se {glm.bse[k]:.4f}")
         assert abs(median - glm.params[k]) < 0.25 * sd + 3 * mcse, (labels[k], median, glm.params[k])
         assert sd == pytest.approx(glm.bse[k], rel=0.15), labels[k]
 
@@ -308,6 +313,9 @@ def test_paired_and_side_by_side_fits_of_one_population_agree(tmp_path, capsys):
     assert ((a["factor_lower"] <= b["factor_median"]) & (b["factor_median"] <= a["factor_upper"])).all(), (a, b)
     assert ((b["factor_lower"] <= a["factor_median"]) & (a["factor_median"] <= b["factor_upper"])).all(), (a, b)
     truth = np.exp(-np.asarray(theta_b))
+    print(pd.DataFrame({"truth": truth, "paired": a["factor_median"], "paired_lo": a["factor_lower"],
+                        "paired_hi": a["factor_upper"], "sbs": b["factor_median"], "sbs_lo": b["factor_lower"],
+                        "sbs_hi": b["factor_upper"]}).round(3).to_string())
     for t in (a, b):
         assert ((t["factor_lower"] <= truth) & (truth <= t["factor_upper"])).sum() >= 3
 
