@@ -461,7 +461,7 @@ def fit_side_by_side(
     from calib.factors import factor_set_id, file_sha256, software_versions, summarise_theta_draws, utc_timestamp
     from calib.factors import FactorSet
     from calib.fitting import _factor_table, _read_species_groups
-    from calib.site_periods import build_site_periods
+    from calib.site_periods import PERIOD_COLUMN, build_site_periods, site_period_keys
     from calib.tables import complete_zeros, side_by_side_problems
 
     problems = side_by_side_problems(tables, reference, period_by)
@@ -511,7 +511,11 @@ def fit_side_by_side(
         "species": data.species,
         "species_groups": groups_map,
         "versions": software_versions(),
-        "domain": calibration_domain(tables.hauls),
+        # What the shared site-periods covered (months, covariates), so convert can flag records
+        # outside it: the site-period plays the calibration group's part; 'period' is no covariate.
+        "domain": calibration_domain(
+            tables.hauls.assign(pair_id=site_period_keys(tables.hauls, data.period_by))
+            .drop(columns=[PERIOD_COLUMN], errors="ignore")),
         "timestamp": utc_timestamp(),
     }
     manifest["factor_set_id"] = factor_set_id(manifest, table)
