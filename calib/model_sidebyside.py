@@ -303,8 +303,6 @@ def set_data(model, data: SitePeriodData) -> None:
     a = _arrays(data, spec)
     if "centred" not in model.named_vars:
         a.pop("centred")
-    if spec.site_effect == "fixed" or "beta" not in model.named_vars:
-        pass
     pm.set_data(a, model=model, coords={"obs": np.arange(data.n_obs), "haul": list(data.haul_ids),
                                         "site_period": list(data.site_periods)})
 
