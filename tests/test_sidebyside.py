@@ -195,6 +195,10 @@ def test_pointwise_log_likelihood_matches_scipy(recovery_fit):
     stored = idata.log_likelihood[ms.LIKELIHOOD].isel(chain=0, draw=5).values
     np.testing.assert_allclose(stored, expected, rtol=1e-6, atol=1e-8)
     assert stored.shape == (data.n_obs,)  # one value per haul x species, for LOO
+    import arviz as az
+
+    loo = az.loo(idata)  # PSIS-LOO (Vehtari, Gelman & Gabry 2017, Statistics and Computing 27)
+    assert loo.n_data_points == data.n_obs and np.isfinite(loo.elpd_loo)
 
 
 @pytest.mark.slow
