@@ -81,6 +81,11 @@ def build_parser() -> argparse.ArgumentParser:
                         "accepted name before anything else")
     p.add_argument("--min-groups", type=int, default=10, metavar="N",
                    help="warn about species caught in fewer calibration groups than this")
+    p.add_argument("--design", choices=["paired", "side-by-side"], default="paired",
+                   help="side-by-side: also summarise hauls by site and period (pair_id ignored) and list "
+                        "what would stop `calib fit --design side-by-side`")
+    p.add_argument("--period-by", choices=["auto", "column", "month", "season", "year"], default="auto",
+                   help="side-by-side: what counts as the same period (see calib fit --help)")
 
     p = sub.add_parser(
         "fit", formatter_class=_Formatter,
@@ -172,6 +177,10 @@ def _cmd_check(args) -> int:
                          species_recorded=args.species_recorded, species_names=args.species_names)
     summary = summarize(tables, reference=args.reference, min_groups=args.min_groups)
     print(summary.text())
+    if args.design == "side-by-side":
+        from calib.site_periods import describe
+
+        print("\n" + describe(tables, reference=args.reference, period_by=args.period_by))
     return 0
 
 
@@ -252,7 +261,7 @@ def _cmd_demo(args) -> int:
 
 def _check_settings(parser: argparse.ArgumentParser, args) -> None:
     """Settings that parse but make no sense are usage errors (exit 2)."""
-    if getattr(args, "design", "paired") == "side-by-side" and args.method != "hierarchical":
+    if getattr(args, "design", "paired") == "side-by-side" and getattr(args, "method", "hierarchical") != "hierarchical":
         parser.error("--design side-by-side is fitted with --method hierarchical only")
     interval = getattr(args, "interval", None)
     if interval is not None and not 0 < interval < 1:

@@ -320,3 +320,42 @@ def build_site_periods(
     )
     data.report["hauls_left_out"] = int((~use).sum())
     return data
+
+
+def describe(tables, reference: str | None = None, period_by: str = "auto") -> str:
+    """Plain-text summary of a side-by-side layout for ``calib check --design side-by-side``.
+
+    Site-periods, how many each pair of gears shared, hauls in single-gear site-periods, and
+    every rule the side-by-side fit would stop on (:func:`calib.tables.side_by_side_problems`).
+    """
+    from calib.tables import side_by_side_problems
+
+    hauls = tables.hauls
+    rule = resolve_period_by(hauls, period_by)
+    lines = [f"Side-by-side layout (pair_id ignored; hauls compared by site and {rule}):",
+             "  (the calibration-group counts and warnings above concern paired fits by pair_id; they do "
+             "not apply to fit --design side-by-side)"]
+    problems = side_by_side_problems(tables, reference, period_by)
+    if "site" in hauls.columns and (rule != "column" or PERIOD_COLUMN in hauls.columns):
+        keys = site_period_keys(hauls, rule)
+        frame = pd.DataFrame({"key": keys, "gear": hauls["gear"]}).dropna()
+        gears_at = frame.groupby("key")["gear"].agg(lambda s: frozenset(s))
+        multi = gears_at[gears_at.map(len) >= 2]
+        single_hauls = int(frame["key"].isin(gears_at[gears_at.map(len) < 2].index).sum())
+        lines.append(f"  {len(frame)} hauls with a site and period in {len(gears_at)} site-periods; "
+                     f"{len(multi)} fished by two or more gears; {single_hauls} hauls in single-gear "
+                     "site-periods (kept by the fit, but no information on the factors)")
+        gears = sorted(hauls["gear"].unique())
+        lines.append("  site-periods shared per gear pair:")
+        for a, b in combinations(gears, 2):
+            n = int(sum(1 for gs in multi if a in gs and b in gs))
+            lines.append(f"    {a} + {b}: {n}")
+    if problems:
+        lines.append("  fit --design side-by-side stops on:")
+        lines.extend(f"    - {p}" for p in problems)
+    else:
+        lines.append("  no problem for fit --design side-by-side" + ("" if reference else
+                     " (give --reference to check that every gear is linked to it)"))
+    lines.append("  Factors from side-by-side hauls hold only if the gears sampled the same animals "
+                 "(same habitat); see docs/methods.md, section 8a.")
+    return "\n".join(lines)

@@ -117,6 +117,16 @@ def test_gear_that_never_meets_the_reference_is_an_error_naming_the_row(tmp_path
     assert not out.exists()
 
 
+def test_check_summarises_the_side_by_side_layout(tmp_path, capsys):
+    h, c = _layout(tmp_path)
+    assert main(["check", "--hauls", str(h), "--catches", str(c), "--reference", "A",
+                 "--design", "side-by-side"]) == 0
+    text = capsys.readouterr().out
+    assert "6 hauls with a site and period in 4 site-periods; 2 fished by two or more gears" in text
+    assert "A + B: 2" in text and "A + C: 0" in text
+    assert "fit --design side-by-side stops on" in text and "gear 'C'" in text
+
+
 def test_missing_site_period_and_fractional_counts_are_reported(tmp_path):
     h, c = _layout(tmp_path, site=["X", "", "X", "X", "X", "Y"], period=["a", "a", "b", "b", "", "c"])
     frame = pd.read_csv(c)
@@ -359,3 +369,20 @@ def test_share_check_flags_gears_that_sampled_different_animals(recovery_fit):
     ppp = ms.share_check(idata, moved, ppc_draws=200, seed=2).set_index(["gear", "species"])["ppp"]
     print(ppp)
     assert (ppp.loc["B"] < 0.05).sum() >= 3, ppp
+
+
+def test_species_a_source_did_not_record_are_not_observations(tmp_path):
+    # Design section 3: zeros are completed only for species a haul's source recorded.
+    h, c = _layout(tmp_path, source=["p1", "p2", "p1", "p2", "p1", "p1"])
+    catches = pd.DataFrame({"haul_id": ["h1", "h2", "h3"], "species": ["pinfish", "pinfish", "blue crab"],
+                            "count": [3, 1, 2]})
+    catches.to_csv(c, index=False)
+    rec = tmp_path / "recorded.csv"
+    pd.DataFrame({"source": ["p1", "p1", "p2"], "species": ["pinfish", "blue crab", "pinfish"],
+                  "year_from": ["", "", ""], "year_to": ["", "", ""]}).to_csv(rec, index=False)
+    tables = load_tables(h, c, species_recorded=rec)
+    data = build_site_periods(tables.hauls, complete_zeros(tables), "A", period_by="year")
+    # 6 hauls x 2 species, less blue crab in p2's two hauls (h2, h4), which p2 did not record
+    assert data.n_obs == 10
+    crab = data.species.index("blue crab")
+    assert not any(data.haul_ids[h] in ("h2", "h4") for h in data.obs_haul[data.obs_species == crab])
