@@ -341,12 +341,18 @@ def test_paired_and_side_by_side_fits_of_one_population_agree(tmp_path, capsys):
 
 
 @pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason=(
+    "known limitation, measured: with gear B in its own habitat (independent site-period effect, "
+    "sd 1) the share check gave ppp 0.02, 0.17, 0.20, 0.22 for B's four species (one of four "
+    "below 0.05): B's fitted patchiness absorbs most of the mismatch. The same-animals assumption "
+    "has to be met by the study design; see docs/methods.md section 8a"))
 def test_share_check_flags_gears_that_sampled_different_animals(recovery_fit):
     """Design section 5: side-by-side groups only calibrate if both gears sample the same animals.
     Simulate gear B fishing a habitat whose density varies independently of the reference's (its
-    own site-period effect, sd 1) and check that the share check says so: ppp < 0.05 for at
+    own site-period effect, sd 1) and ask whether the share check says so: ppp < 0.05 for at
     least 3 of B's 4 species (one replicate; under the true model the same check gave no ppp
-    below 0.01 in test_recovers_known_factors)."""
+    below 0.01 in test_recovers_known_factors). It does not (strict xfail): if a better check
+    makes this pass, remove the xfail and update the docs."""
     study, data, model, _ = recovery_fit
     st = recovery_study(2026)
     rng = np.random.default_rng(1)
