@@ -450,14 +450,13 @@ def fit_side_by_side(
     site-periods where the gear fished beside another gear and the species' total was > 0.
     Raises ``InputError`` listing every problem (:func:`calib.tables.side_by_side_problems`).
     """
-    from dataclasses import asdict
     from pathlib import Path
 
     from calib import diagnostics
     from calib.convert import calibration_domain
     from calib.errors import InputError, Problem
-    from calib.factors import factor_set_id, file_sha256, software_versions, summarise_theta_draws, utc_timestamp
-    from calib.factors import FactorSet
+    from calib.factors import (FactorSet, factor_set_id, file_sha256, software_versions, summarise_theta_draws,
+                               utc_timestamp)
     from calib.fitting import _factor_table, _read_species_groups
     from calib.site_periods import PERIOD_COLUMN, build_site_periods, site_period_keys
     from calib.tables import complete_zeros, side_by_side_problems
