@@ -28,10 +28,10 @@ Normal(beta loc_s, 10) independently (no pooling across site-periods): with Pois
 the reference-library check.
 
 Names in the InferenceData: posterior ``theta`` (gear, species), ``mu``, ``tau``, ``beta``
-(species), ``sigma`` (species), ``log_phi`` (gear, species), ``b`` is not stored (it has
-n_site_periods x n_species entries; ``z_site`` is); log_likelihood ``catch`` (obs): one value
-per haul x species, for LOO; observed_data ``catch``; constant_data obs_haul, obs_species,
-haul_gear, haul_cell, log_effort, species_pool, centred.
+(species), ``sigma`` (species), ``z_site`` (site_period, species; b = beta + sigma * z_site),
+``log_phi`` (gear, species), and with site_effect="fixed" ``b`` itself; log_likelihood ``catch``
+(obs): one value per haul x species, for LOO; observed_data ``catch``; constant_data count,
+obs_haul, obs_species, haul_gear, haul_cell, log_effort, species_pool, beta_loc, centred.
 
 Public: :class:`SideBySidePriors`, :class:`SideBySideSpec`, :func:`build_model`,
 :func:`set_data`, :func:`sample`, :func:`share_check`, :func:`fit_side_by_side`.
