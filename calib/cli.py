@@ -83,6 +83,11 @@ def build_parser() -> argparse.ArgumentParser:
                         "accepted name before anything else")
     p.add_argument("--min-groups", type=int, default=10, metavar="N",
                    help="warn about species caught in fewer calibration groups than this")
+    p.add_argument("--design", choices=["paired", "side-by-side"], default="paired",
+                   help="side-by-side: also summarise hauls by site and period (pair_id ignored) and list "
+                        "what would stop `calib fit --design side-by-side`")
+    p.add_argument("--period-by", choices=["auto", "column", "month", "season", "year"], default="auto",
+                   help="side-by-side: what counts as the same period (see calib fit --help)")
 
     p = sub.add_parser(
         "fit", formatter_class=_Formatter,
@@ -108,6 +113,16 @@ def build_parser() -> argparse.ArgumentParser:
                    help="'none' assumes no tow-to-tow patchiness (plain multinomial); for comparison only")
     p.add_argument("--pooling", choices=["partial", "none"], default="partial",
                    help="'none' fits every species on its own with vague priors")
+    p.add_argument("--design", choices=["paired", "side-by-side"], default="paired",
+                   help="paired: hauls sharing a pair_id are compared (default). side-by-side: gears fished "
+                        "the same sites in the same periods but not as pairs; every haul is placed by its "
+                        "site and period (pair_id ignored) and counts are modelled with a site x period "
+                        "density (negative binomial; --overdispersion none gives Poisson). Only valid if "
+                        "the gears sampled the same animals (not marsh edge vs channel)")
+    p.add_argument("--period-by", choices=["auto", "column", "month", "season", "year"], default="auto",
+                   help="side-by-side: what counts as the same period. auto: the hauls table's 'period' "
+                        "column if it has one, else the month (e.g. 2024-05); season: winter Dec-Feb, "
+                        "spring Mar-May, summer Jun-Aug, autumn Sep-Nov of a year; year: the year")
     p.add_argument("--species-recorded", metavar="FILE", default=None,
                    help="optional table (source, species, year_from, year_to): zeros are completed only "
                         "for species a source recorded")
@@ -181,6 +196,10 @@ def _cmd_check(args) -> int:
                          species_recorded=args.species_recorded, species_names=args.species_names)
     summary = summarize(tables, reference=args.reference, min_groups=args.min_groups)
     print(summary.text())
+    if args.design == "side-by-side":
+        from calib.site_periods import describe
+
+        print("\n" + describe(tables, reference=args.reference, period_by=args.period_by))
     return 0
 
 
@@ -227,6 +246,7 @@ def _cmd_fit(args) -> int:
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
         n_boot=args.bootstrap_reps, rules=_status_rules(args.status_rule), progressbar=not args.quiet,
         length_bin=args.length_bin, length_min_fish=args.length_min_fish,
+        design=args.design, period_by=args.period_by,
     )
     factor_set.save(args.out)
     print(factor_set.summary())
@@ -273,6 +293,8 @@ def _cmd_demo(args) -> int:
 
 def _check_settings(parser: argparse.ArgumentParser, args) -> None:
     """Settings that parse but make no sense are usage errors (exit 2)."""
+    if getattr(args, "design", "paired") == "side-by-side" and getattr(args, "method", "hierarchical") != "hierarchical":
+        parser.error("--design side-by-side is fitted with --method hierarchical only")
     interval = getattr(args, "interval", None)
     if interval is not None and not 0 < interval < 1:
         parser.error("--interval must be between 0 and 1, e.g. 0.9 for a 90% interval")
@@ -283,6 +305,8 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
             parser.error("--length-bin needs --lengths FILE (the measured fish)")
         if args.method != "hierarchical" or args.pooling != "partial":
             parser.error("--length-bin works with --method hierarchical and --pooling partial only")
+        if getattr(args, "design", "paired") != "paired":
+            parser.error("--length-bin works with --design paired only (side-by-side length factors are not built)")
     for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups", "length_min_fish"):
         value = getattr(args, name, None)
         if value is not None and value < (0 if name == "tune" else 1):

@@ -115,14 +115,16 @@ def split_check(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0) -> pd.
     })
 
 
-def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0) -> pd.DataFrame:
+def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0,
+                       ppp: pd.DataFrame | None = None) -> pd.DataFrame:
     """Diagnostics of theta[g, s] for every non-reference gear x species.
 
     Columns: gear, species, n_groups (cells where this gear fished with another gear and
     the species' total > 0), n_caught (fish of the species this gear caught there), rhat,
     ess_bulk, ess_tail (ArviZ rank-normalised R-hat and ESS of theta[g, s]), prior_ratio
     (posterior sd / prior sd of theta[g, s]; the prior sd comes from the ``prior`` group,
-    nan without one), ppp (:func:`split_check`).
+    nan without one), ppp (:func:`split_check`, or the caller's own ``ppp`` table with columns
+    gear, species, ppp for models whose replicates are not a split, e.g. the side-by-side model).
     """
     import arviz as az
 
@@ -149,7 +151,8 @@ def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0)
         frame["prior_ratio"] = frame["post_sd"] / frame["prior_sd"]
     else:
         frame["prior_ratio"] = np.nan
-    ppp = split_check(idata, cells, ppc_draws=ppc_draws, seed=seed)
+    if ppp is None:
+        ppp = split_check(idata, cells, ppc_draws=ppc_draws, seed=seed)
     frame = frame.merge(ppp, on=["gear", "species"], how="left")
     return frame[DIAGNOSTIC_COLUMNS].reset_index(drop=True)
 

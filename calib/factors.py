@@ -171,6 +171,14 @@ class FactorSet:
             if lengths.get("species_without_range"):
                 lines.append("  no length factors (too few measured fish in groups with two or more gears): "
                              + ", ".join(lengths["species_without_range"]))
+        elif m.get("design") == "side-by-side":  # groups are site-periods there
+            c = m["cells"]
+            lines.append(f"  side-by-side design, periods by {c['period_by']}: {c['n_hauls']} hauls in "
+                         f"{c['n_site_periods']} site-periods, {c['n_groups']} fished by two or more gears; "
+                         f"{c['hauls_in_single_gear_site_periods']} hauls in single-gear site-periods (kept; "
+                         "no information on the factors).")
+            lines.append("  site-periods shared per gear pair: " + ", ".join(
+                f"{r['gear_a']}+{r['gear_b']} {r['n_site_periods']}" for r in c["site_periods_per_gear_pair"]))
         else:
             lines.append(
                 f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "

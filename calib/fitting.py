@@ -26,6 +26,7 @@ from calib.factors import (
 )
 
 METHODS = ("hierarchical", "ratio", "glm")
+DESIGNS = ("paired", "side-by-side")
 
 
 def _as_tables(hauls, catches, lengths, species_recorded=None, species_names=None):
@@ -74,6 +75,8 @@ def fit(
     progressbar: bool = True,
     length_bin: float | None = None,
     length_min_fish: int = 1,
+    design: str = "paired",
+    period_by: str = "auto",
 ) -> FactorSet:
     """Fit conversion factors from calibration groups.
 
@@ -98,6 +101,11 @@ def fit(
         factors.csv gets one row per species x gear x length class. Hierarchical method only.
     length_min_fish : with ``length_bin``, a species' calibrated length range runs from its first
         to its last class with at least this many measured fish.
+    design : "paired" (calibration groups by pair_id, the default) or "side-by-side" (every haul
+        placed in its site x period, pair_id ignored; :func:`calib.model_sidebyside.fit_side_by_side`,
+        method "hierarchical" only; overdispersion "none" there means Poisson counts).
+    period_by : side-by-side only: "auto", "column", "month", "season" or "year"
+        (:mod:`calib.site_periods`).
 
     Returns
     -------
@@ -111,6 +119,19 @@ def fit(
     if not 0 < interval < 1:
         raise ValueError("interval must be between 0 and 1, e.g. 0.9")
     tables = _as_tables(hauls, catches, lengths, species_recorded, species_names)
+    if design == "side-by-side":
+        from calib.model_sidebyside import fit_side_by_side
+
+        if length_bin is not None:
+            raise ValueError("length_bin works with design 'paired' only")
+        if method != "hierarchical":
+            raise ValueError("design 'side-by-side' is fitted with method 'hierarchical' only")
+        return fit_side_by_side(
+            tables, reference=reference, period_by=period_by, pooling=pooling, species_groups=species_groups,
+            overdispersion="none" if overdispersion == "none" else "negative-binomial", draws=draws, tune=tune,
+            chains=chains, seed=seed, interval=interval, rules=rules, progressbar=progressbar)
+    if design not in DESIGNS:
+        raise ValueError(f"design must be one of {DESIGNS}, not {design!r}")
     problems = fit_problems(tables, reference)
     if problems:
         raise InputError(problems)

@@ -43,6 +43,8 @@ __all__ = [
     "logistic_retention",
     "SimulatedStudy",
     "SimulatedSurvey",
+    "SimulatedSideBySide",
+    "simulate_side_by_side",
     "simulate_calibration",
     "simulate_survey",
     "simulate_demo",
@@ -753,6 +755,226 @@ def simulate_survey(
         }
     )
     return SimulatedSurvey(catches=catches, lengths=length_table, true_density=true_density)
+
+
+# --------------------------------------------------------------------------------------------
+# Unpaired side-by-side study (sites x periods)
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass
+class SimulatedSideBySide:
+    """A simulated side-by-side study: input tables plus the truth that generated them.
+
+    hauls : haul_id, gear, date, effort, effort_unit, pair_id (blank unless ``paired``), site,
+        and ``period`` when asked for. catches : count > 0 rows only.
+    theta : DataFrame (index gear, columns species), log(q_gear / q_reference); reference row 0.
+    factors : exp(-theta).
+    log_density : DataFrame (index site-period label "site | period", columns species): log of
+        the expected reference-gear count per unit of effort at that site-period.
+    dispersion : Series per species: negative-binomial shape (``"negative-binomial"``), gamma
+        kappa (``"gamma"``) or inf (``"none"``).
+    count : int array (n_hauls, n_species) in the hauls' order.
+    """
+
+    hauls: pd.DataFrame
+    catches: pd.DataFrame
+    gears: list[str]
+    species: list[str]
+    site_periods: list[str]
+    theta: pd.DataFrame
+    factors: pd.DataFrame
+    log_density: pd.DataFrame
+    dispersion: pd.Series
+    count: np.ndarray
+    haul_cell: np.ndarray
+    settings: dict = field(default_factory=dict)
+
+    @property
+    def reference(self) -> str:
+        return self.gears[0]
+
+    def truth_table(self) -> pd.DataFrame:
+        """One row per non-reference gear x species: species, gear, reference, theta, factor."""
+        return pd.DataFrame([
+            {"species": s, "gear": g, "reference": self.reference, "theta": float(self.theta.loc[g, s]),
+             "factor": float(self.factors.loc[g, s])}
+            for g in self.gears[1:] for s in self.species
+        ])
+
+    def to_data(self):
+        """The study as :class:`calib.site_periods.SitePeriodData` (every haul x species observed)."""
+        from calib.site_periods import from_arrays
+
+        gear_index = {g: i for i, g in enumerate(self.gears)}
+        unit = self.hauls.drop_duplicates("gear").set_index("gear")["effort_unit"].to_dict()
+        return from_arrays(self.count, self.hauls["gear"].map(gear_index).to_numpy(), self.haul_cell,
+                           self.hauls["effort"].to_numpy(dtype=float), self.gears, self.species,
+                           site_periods=self.site_periods, haul_ids=list(self.hauls["haul_id"]),
+                           effort_unit={g: unit[g] for g in self.gears})
+
+
+def simulate_side_by_side(
+    n_sites: int,
+    n_periods: int,
+    gears: Sequence[str],
+    theta,
+    log_density_mean,
+    *,
+    species: Sequence[str] | None = None,
+    site_period_sd=1.0,
+    patchiness: str = "negative-binomial",
+    dispersion=2.0,
+    hauls_per_gear: int | Mapping[str, object] = 2,
+    gear_presence: Mapping[str, float] | None = None,
+    cell_gears: Sequence[Sequence[str]] | None = None,
+    effort: Mapping[str, object] | None = None,
+    effort_unit: str | Mapping[str, str] | None = None,
+    paired: bool = False,
+    pair_sd: float = 0.0,
+    period_column: bool = False,
+    start_month: str = "2024-01",
+    seed: int | np.random.Generator = 0,
+) -> SimulatedSideBySide:
+    """Simulate a side-by-side study: gears fishing the same sites in the same months.
+
+    Site-period c (site x month) has log density b_cs = log_density_mean_s + site_period_sd_s * z,
+    z ~ Normal(0, 1) (log expected reference-gear count per unit effort). Haul h of gear g there,
+    with effort e_h, catches
+
+        y_hs ~ Poisson(exp(b_cs) * e_h * exp(theta_gs) * exp(delta_h,s) * gamma_hs)
+
+    with delta the pair's log density offset (``paired`` only, Normal(0, pair_sd), shared by the
+    hauls of one pair) and gamma the haul's patchiness:
+
+    - ``"negative-binomial"``: gamma ~ Gamma(shape phi_s, rate phi_s) (mean 1), so y is negative
+      binomial with shape phi_s = ``dispersion`` (the side-by-side model's own likelihood);
+    - ``"gamma"``: gamma ~ Gamma(shape kappa_s * w_h * exp(theta_gs), rate kappa_s) / (w_h exp(theta_gs)),
+      w_h = e_h / mean effort of the gears in the pair (or site-period), kappa_s = ``dispersion``:
+      the paired model's tow model, under which each pair's split is Dirichlet-multinomial;
+    - ``"none"``: gamma = 1 (Poisson).
+
+    Parameters
+    ----------
+    n_sites, n_periods : sites S01, S02, ... and consecutive months from ``start_month``.
+    gears : gear names, the reference first. theta : as in :func:`simulate_calibration`.
+    log_density_mean, site_period_sd : per species (scalar, sequence or mapping).
+    dispersion : per species, phi (negative binomial) or kappa (gamma).
+    hauls_per_gear : hauls of each gear in each site-period it fished: an int, or a mapping gear ->
+        int or (low, high) drawn uniformly (inclusive) per site-period. With ``paired`` every gear
+        makes the same number of hauls in a site-period (the first gear's), one per pair.
+    gear_presence : mapping gear -> probability that the gear fished a site-period (default 1);
+        site-periods where no gear was drawn get the reference.
+    cell_gears : per site-period (site-major order), the gears that fished it (overrides
+        gear_presence), e.g. for networks where two gears never met.
+    effort : mapping gear -> number or (low, high) per haul (default 1, unit "haul").
+    effort_unit : one label or a mapping per gear (default "m2" with ``effort``, else "haul").
+    paired : give the hauls pair_ids (one haul of every gear present per pair).
+    pair_sd : sd of the pairs' log density offset around their site-period's.
+    period_column : add a ``period`` column (the month label, "P01", "P02", ...).
+    seed : int or numpy Generator (the only source of randomness).
+    """
+    if patchiness not in ("negative-binomial", "gamma", "none"):
+        raise ValueError("patchiness must be 'negative-binomial', 'gamma' or 'none'")
+    rng = _rng(seed)
+    gears = [str(g) for g in gears]
+    species = _species_names(species, log_density_mean)
+    n_g, n_s = len(gears), len(species)
+    theta_gs = _theta_array(theta, gears, species)
+    mu = _per_species(log_density_mean, species, "log_density_mean")
+    sd = _per_species(site_period_sd, species, "site_period_sd")
+    disp = _per_species(dispersion, species, "dispersion")
+    if patchiness != "none" and np.any(disp <= 0):
+        raise ValueError("dispersion must be > 0")
+
+    sites = [f"S{i + 1:02d}" for i in range(n_sites)]
+    months = pd.period_range(pd.Period(start_month, freq="M"), periods=n_periods, freq="M")
+    n_c = n_sites * n_periods
+    cell_site = np.repeat(np.arange(n_sites), n_periods)
+    cell_month = np.tile(np.arange(n_periods), n_sites)
+    labels = [f"{sites[a]} | {months[m].strftime('%Y-%m')}" for a, m in zip(cell_site, cell_month)]
+
+    if cell_gears is not None:
+        if len(cell_gears) != n_c:
+            raise ValueError(f"cell_gears needs one entry per site-period ({n_c})")
+        present = np.array([[g in set(gs) for g in gears] for gs in cell_gears], dtype=bool)
+    else:
+        prob = np.array([float((gear_presence or {}).get(g, 1.0)) for g in gears])
+        present = rng.uniform(size=(n_c, n_g)) < prob[None, :]
+        present[present.sum(axis=1) == 0, 0] = True
+    n_hauls = np.zeros((n_c, n_g), dtype=int)
+    for g, gname in enumerate(gears):
+        spec = hauls_per_gear.get(gname, 1) if isinstance(hauls_per_gear, Mapping) else hauls_per_gear
+        if isinstance(spec, tuple):
+            n_hauls[:, g] = rng.integers(int(spec[0]), int(spec[1]) + 1, size=n_c)
+        else:
+            n_hauls[:, g] = int(spec)
+    if paired:
+        first = n_hauls[np.arange(n_c), np.argmax(present, axis=1)]
+        n_hauls = np.repeat(first[:, None], n_g, axis=1)
+    n_hauls = np.where(present, n_hauls, 0)
+
+    c_grid, g_grid = np.meshgrid(np.arange(n_c), np.arange(n_g), indexing="ij")
+    haul_cell = np.repeat(c_grid.ravel(), n_hauls.ravel())
+    haul_gear = np.repeat(g_grid.ravel(), n_hauls.ravel())
+    haul_k = np.concatenate([np.arange(k) for k in n_hauls.ravel()]).astype(int)
+    n_h = len(haul_cell)
+    haul_effort = np.ones(n_h)
+    for g, gname in enumerate(gears):
+        sel = haul_gear == g
+        haul_effort[sel] = _draw_effort(rng, None if effort is None else effort.get(gname), int(sel.sum()),
+                                        haul_cell[sel], gname)
+
+    log_b = mu[None, :] + sd[None, :] * rng.standard_normal((n_c, n_s))
+    unit_key = haul_cell * 10_000 + haul_k  # the pair (paired) or the site-period (unpaired)
+    if not paired:
+        unit_key = haul_cell.copy()
+    _, unit = np.unique(unit_key, return_inverse=True)
+    delta = pair_sd * rng.standard_normal((unit.max() + 1, n_s)) if paired else np.zeros((unit.max() + 1, n_s))
+    mean = np.exp(log_b[haul_cell] + delta[unit]) * haul_effort[:, None] * np.exp(theta_gs[haul_gear])
+    if patchiness == "negative-binomial":
+        mean = mean * rng.gamma(disp[None, :], 1.0 / disp[None, :], size=mean.shape)
+    elif patchiness == "gamma":
+        unit_effort = np.bincount(unit, weights=haul_effort) / np.bincount(unit)
+        rel = (haul_effort / unit_effort[unit])[:, None] * np.exp(theta_gs[haul_gear])
+        mean = mean / rel * rng.gamma(disp[None, :] * rel, 1.0 / disp[None, :])
+    count = rng.poisson(mean).astype(np.int64)
+
+    site_arr = np.asarray(sites, dtype=object)[cell_site[haul_cell]]
+    month_arr = months[cell_month[haul_cell]]
+    day = rng.integers(1, 29, size=n_h)
+    dates = [f"{m.strftime('%Y-%m')}-{d:02d}" for m, d in zip(month_arr, day)]
+    haul_ids = np.array([f"{s}-{m.strftime('%Y%m')}-{gears[g]}-{k + 1}"
+                         for s, m, g, k in zip(site_arr, month_arr, haul_gear, haul_k)], dtype=object)
+    if isinstance(effort_unit, Mapping):
+        unit_of = [effort_unit[g] for g in gears]
+    else:
+        unit_of = [effort_unit or ("m2" if effort is not None else "haul")] * n_g
+    hauls = pd.DataFrame({
+        "haul_id": haul_ids,
+        "gear": np.asarray(gears, dtype=object)[haul_gear],
+        "date": dates,
+        "effort": haul_effort,
+        "effort_unit": np.asarray(unit_of, dtype=object)[haul_gear],
+        "pair_id": [f"{s}-{m.strftime('%Y%m')}-P{k + 1}" for s, m, k in zip(site_arr, month_arr, haul_k)]
+        if paired else [""] * n_h,
+        "site": site_arr,
+    })
+    if period_column:
+        hauls["period"] = [f"P{m + 1:02d}" for m in cell_month[haul_cell]]
+    hi, si = np.nonzero(count)
+    catches = pd.DataFrame({"haul_id": haul_ids[hi], "species": np.asarray(species, dtype=object)[si],
+                            "count": count[hi, si]})
+    theta_df = pd.DataFrame(theta_gs, index=pd.Index(gears, name="gear"), columns=species)
+    return SimulatedSideBySide(
+        hauls=hauls, catches=catches, gears=gears, species=species, site_periods=labels,
+        theta=theta_df, factors=np.exp(-theta_df),
+        log_density=pd.DataFrame(log_b, index=pd.Index(labels, name="site_period"), columns=species),
+        dispersion=pd.Series(np.full(n_s, np.inf) if patchiness == "none" else disp, index=species),
+        count=count, haul_cell=haul_cell,
+        settings={"patchiness": patchiness, "paired": paired, "pair_sd": pair_sd,
+                  "site_period_sd": sd.tolist()},
+    )
 
 
 # --------------------------------------------------------------------------------------------

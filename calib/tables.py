@@ -1138,3 +1138,92 @@ def fit_problems(tables: Tables, reference: str | None) -> list[Problem]:
                                "add calibration groups where it fished with a gear linked to the reference, "
                                "or leave its hauls out of this fit", h_csv))
     return out
+
+
+def _is_blank(value) -> bool:
+    return _is_missing(value) or str(value).strip() == ""
+
+
+def side_by_side_problems(tables: Tables, reference: str | None, period_by: str = "auto") -> list[Problem]:
+    """Rules that ``fit --design side-by-side`` needs (errors for that fit).
+
+    Every haul is used (``pair_id`` is ignored) and placed in its site x period
+    (:mod:`calib.site_periods`), so:
+
+    - the hauls table needs a ``site`` column, filled for every haul;
+    - with ``period_by="column"`` (or ``auto`` when the table has one) a ``period`` column filled
+      for every haul;
+    - every count is a whole number (the observed, unraised number of fish);
+    - one effort_unit per gear;
+    - the reference gear fished, and shared at least one site-period with another gear;
+    - every gear shares a site-period with the reference, directly or through other gears.
+    """
+    from calib.cells import connected_to
+    from calib.site_periods import PERIOD_COLUMN, resolve_period_by, site_period_gear_graph, site_period_keys
+
+    hauls, catches = tables.hauls, tables.catches
+    hf, cf = tables.files["hauls"], tables.files["catches"]
+    h_csv, c_csv = tables.is_csv("hauls"), tables.is_csv("catches")
+    out: list[Problem] = []
+    if "site" not in hauls.columns or hauls["site"].map(_is_blank).all():
+        out.append(Problem(hf, None, "site", "the side-by-side design places hauls by site and period, but the "
+                           "hauls table has no 'site' column (or it is empty)",
+                           "add a 'site' column naming where each haul was made (hauls at the same site in the "
+                           "same period are compared), or fit paired groups without --design side-by-side", h_csv))
+    else:
+        blank = hauls[hauls["site"].map(_is_blank)]
+        for row, hid in zip(blank["_row"], blank["haul_id"]):
+            out.append(Problem(hf, int(row), "site", f"haul '{hid}' has no site; the side-by-side design "
+                               "compares gears by site and period", "write the site of the haul, or remove the "
+                               "haul (and its catches) from the tables of this fit", h_csv))
+    rule = resolve_period_by(hauls, period_by)
+    if rule == "column":
+        if PERIOD_COLUMN not in hauls.columns:
+            out.append(Problem(hf, None, PERIOD_COLUMN, "periods were asked to come from a 'period' column, but "
+                               "the hauls table has none", "add a 'period' column (e.g. 2024-spring), or choose "
+                               "--period-by month, season or year to take the period from the date", h_csv))
+        else:
+            blank = hauls[hauls[PERIOD_COLUMN].map(_is_blank)]
+            for row, hid in zip(blank["_row"], blank["haul_id"]):
+                out.append(Problem(hf, int(row), PERIOD_COLUMN, f"haul '{hid}' has no period",
+                                   "write the period of every haul, or choose --period-by month, season or "
+                                   "year to take the period from the date instead of the 'period' column", h_csv))
+
+    bad = catches[catches["count"] % 1 != 0]
+    for hid, sp, count, row in zip(bad["haul_id"], bad["species"], bad["count"], bad["_row"]):
+        out.append(Problem(cf, int(row), "count", f"count {count:g} of '{sp}' in haul '{hid}' is not a whole number",
+                           "fitting needs the observed (unraised) number of fish: write the count as caught", c_csv))
+    for gear, units in hauls.groupby("gear")["effort_unit"]:
+        if units.nunique() > 1:
+            rows = hauls.loc[units.index, "_row"]
+            out.append(Problem(hf, int(rows.min()), "effort_unit",
+                               f"gear '{gear}' has effort in {units.nunique()} units ({', '.join(sorted(units.unique()))})",
+                               "use one effort unit per gear (convert the effort), or give the gear a different "
+                               "label for each unit", h_csv))
+    if out or reference is None:
+        return out
+
+    gears = sorted(hauls["gear"].unique())
+    if reference not in set(gears):
+        out.append(Problem(hf, None, "gear", f"reference gear '{reference}' does not appear in the hauls",
+                           f"choose one of the gears in the hauls: {', '.join(gears)}", h_csv))
+        return out
+    keys = site_period_keys(hauls, rule)
+    graph = site_period_gear_graph(hauls, keys)
+    if not graph.get(reference):
+        out.append(Problem(hf, None, "gear", f"reference gear '{reference}' shares no site and period with another "
+                           "gear, so no factor can be estimated",
+                           "choose a reference that fished the same sites in the same periods as the other gears, "
+                           "or check the site names and dates (a coarser --period-by, e.g. season, groups more "
+                           "hauls together)", h_csv))
+        return out
+    linked = connected_to(reference, graph)
+    for gear in gears:
+        if gear not in linked:
+            first = int(hauls.loc[hauls["gear"] == gear, "_row"].min())
+            out.append(Problem(hf, first, "gear",
+                               f"gear '{gear}' never fished a site in a period where a gear linked to the "
+                               f"reference '{reference}' fished (site-periods by {rule})",
+                               "add hauls where it fished beside the reference (or a gear linked to it), check "
+                               "its site names and dates, or leave its hauls out of this fit", h_csv))
+    return out
