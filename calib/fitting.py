@@ -74,6 +74,7 @@ def fit(
     progressbar: bool = True,
     length_bin: float | None = None,
     length_min_fish: int = 1,
+    covariates: list[str] | None = None,
 ) -> FactorSet:
     """Fit conversion factors from calibration groups.
 
@@ -98,6 +99,9 @@ def fit(
         factors.csv gets one row per species x gear x length class. Hierarchical method only.
     length_min_fish : with ``length_bin``, a species' calibrated length range runs from its first
         to its last class with at least this many measured fish.
+    covariates : hauls columns theta depends on (:mod:`calib.covariate_fit`): text columns as
+        per-level offsets (same level in every haul of a group), numeric ones as a slope on the
+        group mean. factors.csv gets one row per species x gear x level. Hierarchical method only.
 
     Returns
     -------
@@ -135,6 +139,16 @@ def fit(
                              overdispersion=overdispersion, draws=draws, tune=tune, chains=chains, seed=seed,
                              interval=interval, rules=rules, progressbar=progressbar,
                              min_class_fish=length_min_fish)
+    if covariates:
+        if method != "hierarchical" or pooling != "partial" or length_bin is not None:
+            raise ValueError("--covariate works with the hierarchical method and partial pooling, without "
+                             "--length-bin")
+        from calib.covariate_fit import fit_with_covariates
+
+        return fit_with_covariates(tables, counts, reference=reference, covariates=list(covariates),
+                                   groups_map=groups_map, overdispersion=overdispersion, draws=draws, tune=tune,
+                                   chains=chains, seed=seed, interval=interval, rules=rules,
+                                   progressbar=progressbar)
     cells = cells_mod.build_cells(tables.hauls, counts, reference, species_groups=groups_map)
     rules = rules or diagnostics.StatusRules()
 
