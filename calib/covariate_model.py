@@ -10,7 +10,9 @@ group i by its covariates:
                                                          of x_n over the calibration groups
     delta[g, c, baseline_c] = 0;  delta[g, c, l] ~ Normal(0, sd_c)   (sampled centred)
     sd_c        ~ HalfNormal(offset_sd)                  (one pooled sd per categorical covariate,
-                                                         shrinking every gear x level offset toward 0)
+                                                         shrinking every gear x level offset toward 0;
+                                                         fixed at single_offset_sd when the covariate
+                                                         has fewer than 3 offsets)
     b[g, n]     ~ Normal(0, slope_sd)                    (change of theta per scale_n of covariate n)
     theta_gs    ~ Normal(mu[g, pool(s)], tau_g)          (as the constant model; theta is the value at
                                                          the baseline levels and the calibration means)
@@ -48,12 +50,19 @@ class CovariateModelSpec:
         0.5 says a level usually changes the factor by a factor of about exp(0.34) = 1.4 (prior
         median of sd_c); offsets of 1 (a factor of 2.7) are possible, an offset near 0 (the
         level does not matter) is favoured. Rule of thumb, no source.
+    min_pooled_offsets : the pooled sd_c is estimated only when a covariate has at least this many
+        offsets (non-reference gears x non-baseline levels); with fewer (e.g. one gear and day/night)
+        the offsets are Normal(0, single_offset_sd) with that sd fixed.
+    single_offset_sd : 1.0, the prior sd of an offset that is not pooled: a level may change the
+        factor by up to a factor of about 7 (exp(1.96)) at 95%. Weakly informative; rule of thumb.
     slope_sd : b ~ Normal(0, slope_sd) per scale (one sd of the covariate over the calibration
         groups): a change of one sd moves theta by less than 1 (a factor of 2.7) at 95%.
     overdispersion, priors, parametrization : as :class:`calib.model.ModelSpec`.
     """
 
     offset_sd: float = 0.5
+    min_pooled_offsets: int = 3
+    single_offset_sd: float = 1.0
     slope_sd: float = 0.5
     overdispersion: str = "dirichlet-multinomial"
     priors: Priors = field(default_factory=Priors)
@@ -68,11 +77,14 @@ class CovariateModelSpec:
         d["theta"] = ("theta_gs + sum over categorical covariates of offset[gear, level] + sum over numeric "
                       "covariates of slope[gear] * (group mean - calibration mean)")
         d["offset_sd"] = self.offset_sd
+        d["min_pooled_offsets"] = self.min_pooled_offsets
+        d["single_offset_sd"] = self.single_offset_sd
         d["slope_sd"] = self.slope_sd
         d["priors"]["formulas"]["covariates"] = {
             "offset[gear, baseline level]": "0",
             "offset[gear, other level]": "Normal(0, sd_c)",
-            "sd_c": f"HalfNormal({self.offset_sd})",
+            "sd_c": f"HalfNormal({self.offset_sd}) with at least {self.min_pooled_offsets} offsets "
+                    f"(gears x non-baseline levels), else fixed at {self.single_offset_sd}",
             "slope[gear, n] * scale_n": f"Normal(0, {self.slope_sd})",
         }
         return d
@@ -141,7 +153,12 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
             s = _safe(c)
             n_lv = len(cc.levels[c])
             level = pm.Data(f"cell_level_{s}", np.asarray(cc.cell_level[:, k], dtype=np.int64), dims="cell")
-            sd_c = pm.HalfNormal(f"sd_{s}", spec.offset_sd)
+            if n_fg * (n_lv - 1) >= spec.min_pooled_offsets:
+                sd_c = pm.HalfNormal(f"sd_{s}", spec.offset_sd)
+            else:
+                # One or two offsets cannot inform a pooled sd (its posterior stays its prior) and a
+                # hierarchical sd then only adds a funnel: fixed prior sd instead.
+                sd_c = spec.single_offset_sd
             # Centred: the offsets are few and the data usually pin them down; the non-centred form
             # (offset = sd * z) gave 9 divergences in 600 draws on a 60-group day/night study.
             free = pm.Normal(f"offset_free_{s}", 0.0, sd_c, dims=("factor_gear", f"other_level_{s}"))
