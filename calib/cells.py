@@ -636,7 +636,9 @@ def build_covariate_cells(
             problems.append(Problem(hauls_file, None, name, f"--covariate {name} is given twice", "give it once"))
         seen.add(name)
         if name not in hauls.columns:
-            have = ", ".join(c for c in hauls.columns if c not in structural and not c.startswith("_"))
+            from calib.convert import STRUCTURAL_COLUMNS
+
+            have = ", ".join(c for c in hauls.columns if c not in STRUCTURAL_COLUMNS and not c.startswith("_"))
             problems.append(Problem(hauls_file, None, name, f"--covariate {name}: no such column in the hauls table",
                                     f"name a column of the hauls table (columns besides the required ones: "
                                     f"{have or 'none'})"))
