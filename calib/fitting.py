@@ -130,6 +130,8 @@ def fit(
                         "add a row for it (species, group) so it is pooled with the right group")
                 for s in unlisted
             ])
+    if covariates and length_bin is not None:
+        raise ValueError("--covariate and --length-bin cannot be combined yet; fit them separately")
     if length_bin is not None:
         if method != "hierarchical" or pooling != "partial":
             raise ValueError("--length-bin works with the hierarchical method and partial pooling only")

@@ -227,3 +227,13 @@ def test_convert_uses_each_records_own_covariates(effect_fit, tmp_path):
     # night records get a smaller factor than day records at the same depth, as fitted
     used = cv.factors.dropna(subset=["covariates"])
     assert used["n_records"].sum() == ((rec["gear"] == "beam")).sum()
+
+
+def test_covariate_with_length_bin_is_a_usage_error(tmp_path, capsys):
+    from calib.cli import main
+
+    with pytest.raises(SystemExit) as exc:
+        main(["fit", "--hauls", "h.csv", "--catches", "c.csv", "--lengths", "l.csv", "--reference", "otter",
+              "--covariate", "day_night", "--length-bin", "10", "--out", str(tmp_path / "out")])
+    assert exc.value.code == 2
+    assert "--covariate and --length-bin" in capsys.readouterr().err
