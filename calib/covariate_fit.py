@@ -73,7 +73,7 @@ def covariate_summary(idata, cc, interval: float = 0.9) -> pd.DataFrame:
                 v = off.sel(gear=g, **{f"level_{_safe(c)}": lv}).values.ravel()
                 rows.append((c, "categorical", g, lv, float(np.median(v)), float(np.quantile(v, lo)),
                              float(np.quantile(v, hi))))
-    for k, n in enumerate(cc.numeric):
+    for n in cc.numeric:
         for g in cc.cells.gears[1:]:
             v = post["slope"].sel(gear=g, numeric=n).values.ravel()
             rows.append((n, "numeric (per unit)", g, "", float(np.median(v)), float(np.quantile(v, lo)),
