@@ -243,3 +243,16 @@ def test_covariate_with_length_bin_is_a_usage_error(tmp_path, capsys):
               "--covariate", "day_night", "--length-bin", "10", "--out", str(tmp_path / "out")])
     assert exc.value.code == 2
     assert "--covariate and --length-bin" in capsys.readouterr().err
+
+
+def test_series_refuses_covariate_converted_records(effect_fit, tmp_path):
+    # Each such record may have its own factor, so series_draws has no single species x gear draw
+    # for it: series says so instead of pairing records with the wrong draws.
+    from calib.convert import convert
+    from calib.errors import InputError
+    from calib.series import series
+
+    _, _, tmp = effect_fit
+    convert(tmp / "factors", tmp / "hauls.csv", tmp / "catches.csv").save(tmp_path / "converted")
+    with pytest.raises(InputError, match="covariate values"):
+        series(tmp_path / "converted")
