@@ -645,6 +645,13 @@ def build_covariate_cells(
         elif name in structural:
             problems.append(Problem(hauls_file, None, name, f"'{name}' is a required hauls column, not a covariate",
                                     "name another column (e.g. day_night, habitat, depth_m)"))
+    safe = {}
+    for name in covariates:  # posterior variable names use letters, digits and '_' only
+        key = "".join(ch if ch.isalnum() or ch == "_" else "_" for ch in str(name))
+        if key in safe and safe[key] != name:
+            problems.append(Problem(hauls_file, None, name, f"covariates '{safe[key]}' and '{name}' differ only in "
+                                    "punctuation or spaces", "rename one of the columns"))
+        safe[key] = name
     if problems:
         raise InputError(problems)
 

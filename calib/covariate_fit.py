@@ -31,7 +31,7 @@ def _numeric_diagnostics(idata, cc, name: str, support: pd.DataFrame) -> pd.Data
     from calib.covariate_model import _safe
 
     s = _safe(name)
-    var = f"theta_{s}"
+    var = f"theta_by_{s}"
     other = list(cc.cells.gears[1:])
     th = idata.posterior[var].sel(gear=other)
     ds = th.to_dataset(name="t")
@@ -137,7 +137,7 @@ def fit_with_covariates(tables, counts, *, reference: str, covariates, groups_ma
     for n in cc.numeric:
         diag = _numeric_diagnostics(idata, cc, n, support)
         status = diagnostics.assign_status(diag, divergences, rules)
-        th = idata.posterior[f"theta_{cm._safe(n)}"].sel(gear=list(cc.cells.gears[1:]))
+        th = idata.posterior[f"theta_by_{cm._safe(n)}"].sel(gear=list(cc.cells.gears[1:]))
         lo, hi = (1 - interval) / 2, 1 - (1 - interval) / 2
         q = np.exp(-th).quantile([lo, 0.5, hi], dim=("chain", "draw"))
         rows = []

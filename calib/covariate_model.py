@@ -25,8 +25,8 @@ Public: :class:`CovariateModelSpec`, :func:`build_covariate_model`, :func:`level
 
 InferenceData names: posterior ``theta`` (gear, species; baseline levels, numeric covariates at
 their calibration mean), per categorical covariate c ``offset_<c>`` (gear, level_<c>) and
-``theta_<c>`` (gear, species, level_<c>), ``sd_<c>``; for numeric covariates ``slope`` (gear,
-numeric; per unit of the covariate) and per numeric covariate n ``theta_<n>`` (gear, species,
+``theta_by_<c>`` (gear, species, level_<c>), ``sd_<c>``; for numeric covariates ``slope`` (gear,
+numeric; per unit of the covariate) and per numeric covariate n ``theta_by_<n>`` (gear, species,
 at_<n>: theta at the 10th, 50th and 90th percentiles of the group values); ``mu``, ``tau``,
 ``log_kappa`` (combo, species) and the sampler's variables; log_likelihood ``split`` (cell).
 """
@@ -165,7 +165,7 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
             full = pt.concatenate([pt.zeros((n_fg, 1)), free], axis=1)
             full = pt.concatenate([pt.zeros((1, n_lv)), full], axis=0)  # reference row 0
             offset = pm.Deterministic(f"offset_{s}", full, dims=("gear", f"level_{s}"))
-            pm.Deterministic(f"theta_{s}", theta[:, :, None] + offset[:, None, :],
+            pm.Deterministic(f"theta_by_{s}", theta[:, :, None] + offset[:, None, :],
                              dims=("gear", "species", f"level_{s}"))
             shift = shift + offset[:, level].T
 
@@ -181,7 +181,7 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
             for k, n in enumerate(cc.numeric):
                 s = _safe(n)
                 at = np.asarray(cc.percentiles[n], dtype=float) - cc.centre[n]
-                pm.Deterministic(f"theta_{s}", theta[:, :, None] + slope[:, k][:, None, None] * at[None, None, :],
+                pm.Deterministic(f"theta_by_{s}", theta[:, :, None] + slope[:, k][:, None, None] * at[None, None, :],
                                  dims=("gear", "species", f"at_{s}"))
 
         log_alpha = pt.log(pt.switch(present, weight, 1.0)) + theta[:, cell_species].T + shift
@@ -205,7 +205,7 @@ def level_view(idata, cc: CovariateCells, covariate: str):
     """The fit seen per species x level of one categorical covariate, for :mod:`calib.diagnostics`.
 
     Returns (InferenceData, Cells, strata) where the *species* axis is species x level (label
-    ``"species | name=level"``): posterior/prior ``theta`` (gear, species) is ``theta_<c>``
+    ``"species | name=level"``): posterior/prior ``theta`` (gear, species) is ``theta_by_<c>``
     flattened, ``log_kappa`` the species' value repeated over its levels; the cells are the fit's
     with each cell's species replaced by its species x level stratum. ``strata`` is a DataFrame
     (stratum, species, level). With a single categorical covariate the split check (ppp) on this
@@ -225,7 +225,7 @@ def level_view(idata, cc: CovariateCells, covariate: str):
                            "level": np.tile(levels, cells.n_species)})
 
     def flat(group):
-        th = group[f"theta_{s}"].stack(stratum=("species", f"level_{s}"))
+        th = group[f"theta_by_{s}"].stack(stratum=("species", f"level_{s}"))
         th = th.drop_vars(["stratum", "species", f"level_{s}"]).assign_coords(stratum=labels)
         out = {"theta": th.rename({"stratum": "species"}).transpose("chain", "draw", "gear", "species")}
         if "log_kappa" in group:
@@ -234,7 +234,7 @@ def level_view(idata, cc: CovariateCells, covariate: str):
         return xr.Dataset(out)
 
     groups = {"posterior": flat(idata.posterior)}
-    if getattr(idata, "prior", None) is not None and f"theta_{s}" in idata.prior:
+    if getattr(idata, "prior", None) is not None and f"theta_by_{s}" in idata.prior:
         groups["prior"] = flat(idata.prior)
     if getattr(idata, "sample_stats", None) is not None:
         groups["sample_stats"] = idata.sample_stats
