@@ -559,3 +559,173 @@ def build_length_cells(
                        bin_mm=float(bin_mm), species_range=species_range, classes=classes,
                        input_resolution=resolution,
                        species_pool=species_pool, report=report)
+
+
+# --------------------------------------------------------------------------- group covariates
+
+
+@dataclass
+class CovariateCells:
+    """Calibration cells with group-level covariates (``calib fit --covariate NAME``).
+
+    ``cells`` is the ordinary :class:`Cells` of :func:`build_cells` (unchanged); beside it, per cell:
+
+    cell_level : (n_cells, n_categorical) int, the level of each categorical covariate in the
+        cell's group, as an index into ``levels[name]`` (the baseline level is index 0).
+    cell_value : (n_cells, n_numeric) float, the mean of each numeric covariate over the
+        hauls of the cell's group (its own units).
+
+    categorical, numeric : covariate names in the order of the columns above.
+    levels : name -> levels, baseline first (the most common level among the calibration
+        groups; ties go to the first in sorted order), then the others sorted.
+    centre, scale : numeric name -> mean and sd (sd 1 when 0) of the group values over the
+        calibration groups; the model uses (value - centre) / scale.
+    percentiles : numeric name -> the group values' 10th, 50th and 90th percentiles (the values
+        factors.csv reports factors at).
+    group_values : one row per calibration group (pair_id) with each covariate's group value.
+    """
+
+    cells: Cells
+    categorical: list[str]
+    numeric: list[str]
+    levels: dict
+    cell_level: np.ndarray
+    cell_value: np.ndarray
+    centre: dict
+    scale: dict
+    percentiles: dict
+    group_values: pd.DataFrame
+    n_groups_per_level: dict = field(default_factory=dict)
+
+    @property
+    def baseline(self) -> dict:
+        return {c: self.levels[c][0] for c in self.categorical}
+
+
+COVARIATE_PERCENTILES = (10, 50, 90)
+
+
+def is_numeric_covariate(values: pd.Series) -> bool:
+    """A covariate is numeric when its column holds numbers (not booleans); otherwise categorical."""
+    return bool(pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values))
+
+
+def build_covariate_cells(
+    hauls: pd.DataFrame,
+    counts: pd.DataFrame,
+    reference: str,
+    covariates: list[str],
+    species_groups: dict[str, str] | None = None,
+    hauls_file: str = "hauls",
+) -> CovariateCells:
+    """Calibration cells plus each group's covariate values (design sections 3 and 5).
+
+    covariates : hauls columns to use. A column of numbers is numeric (its group value is the mean
+        over the group's hauls); any other column is categorical, and every haul of a calibration
+        group must then have the same level, else ``InputError`` names the groups, their rows and
+        the fix. A blank value in a calibration haul is an error too (a group needs its value).
+    Returns :class:`CovariateCells`.
+    """
+    from calib.errors import InputError, Problem
+
+    problems = []
+    structural = {"haul_id", "gear", "date", "effort", "effort_unit", "pair_id", "_row", "year"}
+    seen = set()
+    for name in covariates:
+        if name in seen:
+            problems.append(Problem(hauls_file, None, name, f"--covariate {name} is given twice", "give it once"))
+        seen.add(name)
+        if name not in hauls.columns:
+            from calib.convert import STRUCTURAL_COLUMNS
+
+            have = ", ".join(c for c in hauls.columns if c not in STRUCTURAL_COLUMNS and not c.startswith("_"))
+            problems.append(Problem(hauls_file, None, name, f"--covariate {name}: no such column in the hauls table",
+                                    f"name a column of the hauls table (columns besides the required ones: "
+                                    f"{have or 'none'})"))
+        elif name in structural:
+            problems.append(Problem(hauls_file, None, name, f"'{name}' is a required hauls column, not a covariate",
+                                    "name another column (e.g. day_night, habitat, depth_m)"))
+    safe = {}
+    for name in covariates:  # posterior variable names use letters, digits and '_' only
+        key = "".join(ch if ch.isalnum() or ch == "_" else "_" for ch in str(name))
+        if key in safe and safe[key] != name:
+            problems.append(Problem(hauls_file, None, name, f"covariates '{safe[key]}' and '{name}' differ only in "
+                                    "punctuation or spaces", "rename one of the columns"))
+        safe[key] = name
+    if problems:
+        raise InputError(problems)
+
+    base = build_cells(hauls, counts, reference, species_groups=species_groups)
+    group_index = {p: i for i, p in enumerate(base.groups)}
+    cal = calibration_hauls(hauls)
+    cal = cal[cal["pair_id"].isin(group_index) & cal["gear"].isin(base.gears)]
+    row_of = cal["_row"] if "_row" in cal else pd.Series(np.arange(len(cal)) + 1, index=cal.index)
+
+    categorical = [c for c in covariates if not is_numeric_covariate(hauls[c])]
+    numeric = [c for c in covariates if is_numeric_covariate(hauls[c])]
+    group_values = pd.DataFrame({"pair_id": base.groups})
+    levels, centre, scale, percentiles, per_level = {}, {}, {}, {}, {}
+
+    for name in covariates:
+        blank = cal[name].isna() | (cal[name].astype("string").str.strip() == "")
+        if blank.any():
+            rows = row_of[blank].astype(int).tolist()
+            groups_b = sorted(cal.loc[blank, "pair_id"].astype(str).unique())
+            problems.append(Problem(
+                hauls_file, rows[0], name,
+                f"covariate '{name}' is blank in {int(blank.sum())} calibration haul(s) (rows {_list_text(rows)}; "
+                f"groups {_list_text(groups_b)})",
+                f"fill in '{name}' for every haul of those calibration groups, or leave out --covariate {name}"))
+            continue
+        if name in categorical:
+            text = cal[name].astype("string").str.strip()
+            n_levels = text.groupby(cal["pair_id"]).nunique()
+            mixed = sorted(n_levels[n_levels > 1].index.astype(str))
+            if mixed:
+                sel = cal["pair_id"].astype(str).isin(mixed)
+                rows = row_of[sel].astype(int).tolist()
+                detail = "; ".join(
+                    f"{p}: " + ", ".join(sorted(set(text[sel & (cal['pair_id'].astype(str) == p)])))
+                    for p in mixed[:5])
+                problems.append(Problem(
+                    hauls_file, rows[0], name,
+                    f"categorical covariate '{name}' differs between hauls of the same calibration group in "
+                    f"{len(mixed)} group(s) ({detail}{'; ...' if len(mixed) > 5 else ''}; rows {_list_text(rows)})",
+                    f"give every haul of a group the same '{name}' (a group is one place and time), split the group "
+                    "into groups of one level each (different pair_id), or leave out --covariate " + name))
+                continue
+            per_group = text.groupby(cal["pair_id"]).first()
+            values = per_group.reindex(base.groups)
+            freq = values.value_counts()
+            order = sorted(freq.index, key=lambda v: (-int(freq[v]), str(v)))
+            baseline = order[0]
+            levels[name] = [str(baseline)] + sorted(str(v) for v in freq.index if v != baseline)
+            per_level[name] = {lv: int(freq.get(lv, 0)) for lv in levels[name]}
+            group_values[name] = values.astype(str).to_numpy()
+        else:
+            per_group = cal[name].astype(float).groupby(cal["pair_id"]).mean().reindex(base.groups)
+            v = per_group.to_numpy(dtype=float)
+            centre[name] = float(v.mean())
+            sd = float(v.std(ddof=1)) if len(v) > 1 else 0.0
+            scale[name] = sd if sd > 0 else 1.0
+            percentiles[name] = [float(x) for x in np.percentile(v, COVARIATE_PERCENTILES)]
+            group_values[name] = v
+    if problems:
+        raise InputError(problems)
+
+    gi = base.cell_group
+    cell_level = np.zeros((base.n_cells, len(categorical)), dtype=np.int64)
+    for k, name in enumerate(categorical):
+        idx = {lv: i for i, lv in enumerate(levels[name])}
+        cell_level[:, k] = np.array([idx[x] for x in group_values[name]], dtype=np.int64)[gi]
+    cell_value = np.zeros((base.n_cells, len(numeric)))
+    for k, name in enumerate(numeric):
+        cell_value[:, k] = group_values[name].to_numpy(dtype=float)[gi]
+    return CovariateCells(cells=base, categorical=categorical, numeric=numeric, levels=levels,
+                          cell_level=cell_level, cell_value=cell_value, centre=centre, scale=scale,
+                          percentiles=percentiles, group_values=group_values, n_groups_per_level=per_level)
+
+
+def _list_text(items, limit: int = 12) -> str:
+    items = [str(x) for x in items]
+    return ", ".join(items[:limit]) + (f", ... ({len(items)} in all)" if len(items) > limit else "")

@@ -149,6 +149,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--length-min-fish", type=int, default=1, metavar="N",
                    help="with --length-bin: a species' calibrated length range runs from its first to its "
                         "last length class with at least N measured fish")
+    p.add_argument("--covariate", action="append", default=[], metavar="NAME",
+                   help="let the factor depend on a column of the hauls table that is the same for every "
+                        "haul of a calibration group (repeatable), e.g. day_night, habitat, depth_m. A text "
+                        "column gives one factor per level (offsets from the most common level); a numeric "
+                        "column a slope on the group mean, reported at its 10th, 50th and 90th percentiles. "
+                        "convert then uses each record's own value")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
     from calib.convert import add_convert_parser
@@ -247,6 +253,7 @@ def _cmd_fit(args) -> int:
         n_boot=args.bootstrap_reps, rules=_status_rules(args.status_rule), progressbar=not args.quiet,
         length_bin=args.length_bin, length_min_fish=args.length_min_fish,
         design=args.design, period_by=args.period_by,
+        covariates=args.covariate or None,
     )
     factor_set.save(args.out)
     print(factor_set.summary())
@@ -307,6 +314,11 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
             parser.error("--length-bin works with --method hierarchical and --pooling partial only")
         if getattr(args, "design", "paired") != "paired":
             parser.error("--length-bin works with --design paired only (side-by-side length factors are not built)")
+    if getattr(args, "covariate", None):
+        if getattr(args, "length_bin", None) is not None:
+            parser.error("--covariate and --length-bin cannot be combined yet; fit them separately")
+        if args.method != "hierarchical" or args.pooling != "partial":
+            parser.error("--covariate works with --method hierarchical and --pooling partial only")
     for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups", "length_min_fish"):
         value = getattr(args, name, None)
         if value is not None and value < (0 if name == "tune" else 1):

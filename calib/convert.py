@@ -36,9 +36,16 @@ they are tested (a record gets the first that applies):
     outside_length_range (length factor sets) measured fish outside the species' calibrated length
                         range (converted with the nearest class and flagged when
                         ``outside_lengths="nearest"``)
+    covariate_missing   (covariate factor sets) a covariate the factors depend on is blank or missing
+                        in the haul
+    covariate_level     (covariate factor sets) the haul's level of a categorical covariate was not
+                        calibrated
 
 With a factor set fitted by length (``calib fit --length-bin``) and the survey's ``lengths`` table,
 records are converted per length class and summed per haul x species (:mod:`calib.length_convert`).
+With a factor set fitted with ``--covariate``, each record uses its haul's own covariate values
+(:mod:`calib.covariate_convert`); a numeric value outside the calibration groups' range is
+converted and flagged in ``domain_flag``.
 
 A zero of a species x gear without a usable factor is rejected too, not passed as zero:
 keeping that gear's zeros while rejecting its catches would bias any mean downward.
@@ -81,7 +88,8 @@ CSV_MAX_ROWS = 1_000_000  # records.csv is written too when there are at most th
 ADDED_COLUMNS = ["species", "count", "cpue", "cpue_ref_median", "cpue_ref_lower", "cpue_ref_upper",
                  "factor_id", "factor_gear", "factor_species", "factor_status", "domain_flag"]
 REJECT_CODES = ("not_recorded", "no_factor", "not_species_level", "no_draws", "draws_not_finite",
-                "factor_fail", "effort_unit", "no_lengths", "outside_length_range")
+                "factor_fail", "effort_unit", "no_lengths", "outside_length_range", "covariate_missing",
+                "covariate_level")
 REJECT_LABELS = {
     "not_recorded": "species not recorded by the haul's source that year",
     "no_factor": "no factor for that species x gear",
@@ -92,6 +100,8 @@ REJECT_LABELS = {
     "effort_unit": "effort unit differs from the factor's",
     "no_lengths": "catch > 0 without lengths (length factors)",
     "outside_length_range": "lengths outside the calibrated length range",
+    "covariate_missing": "covariate blank or missing (covariate factors)",
+    "covariate_level": "covariate level not calibrated",
 }
 _CODE = {name: i + 1 for i, name in enumerate(REJECT_CODES)}
 DRAW_COLUMNS = ["species", "gear", "draw", "factor", "posterior_chain", "posterior_draw"]
@@ -317,6 +327,7 @@ class Conversion:
     notes: list[str] = field(default_factory=list)
     store: "_RecordStore | None" = field(default=None, repr=False)
     length_factor_draws: pd.DataFrame | None = None
+    covariate_factor_draws: pd.DataFrame | None = None
     record_lengths: pd.DataFrame | None = None
     _records: pd.DataFrame | None = field(default=None, init=False, repr=False)
 
@@ -348,6 +359,9 @@ class Conversion:
         ``count / hauls.effort[haul]``; its factor_species and factor_gear are its species and
         its haul's gear.
         """
+        if self.manifest["counts"].get("covariate_converted"):
+            raise ValueError("this conversion holds records converted with their own covariate values: they have "
+                             "no single species x gear factor draw; series and trend do not handle them yet")
         if self.manifest["counts"].get("length_converted"):
             raise ValueError("this conversion holds records converted by length class: each has its own mix of "
                              "class factors, so they have no single species x gear factor draw; series and trend "
@@ -384,6 +398,8 @@ class Conversion:
             lines.append(f"    {REJECT_LABELS[code]}: {n}")
         lines.append(f"  outside the calibration's domain (flagged in domain_flag, still converted): "
                      f"{c['domain_flagged']}")
+        if c.get("covariate_converted"):
+            lines.append(f"  converted with their haul's own covariate values: {c['covariate_converted']}")
         if c.get("length_converted"):
             lines.append(f"  converted length class by length class (factors by length, "
                          f"{m['length_bin_mm']:g}-mm classes): {c['length_converted']}")
@@ -426,6 +442,8 @@ class Conversion:
             if self.length_factor_draws is not None:
                 self.length_factor_draws.to_parquet(tmp / "length_factor_draws.parquet", index=False)
                 self.record_lengths.to_csv(tmp / "record_lengths.csv", index=False, float_format="%.6g")
+            if self.covariate_factor_draws is not None:
+                self.covariate_factor_draws.to_parquet(tmp / "covariate_factor_draws.parquet", index=False)
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
 
@@ -652,6 +670,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     tables = hauls if isinstance(hauls, Tables) else load_tables(
         hauls, catches, lengths, species_recorded=species_recorded, species_names=species_names)
     by_length = "length" in fs.idata.posterior["theta"].dims
+    by_cov = bool(fs.manifest.get("covariates")) and not by_length
     if by_length and tables.lengths is not None:
         from calib.length_convert import survey_length_problems
 
@@ -722,6 +741,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     c_why = np.full(k, "", dtype=object)  # the factor table's reason, quoted in rejections
     c_key = []
     c_length = np.zeros(k, dtype=bool)  # converted per length class (calib.length_convert)
+    c_cov = np.zeros(k, dtype=bool)  # converted with the record's covariates (calib.covariate_convert)
     used_draws: dict[int, np.ndarray] = {}
     for j, cc in enumerate(ucombo):
         g, s = gears_all[cc // n_sp], species_all[cc % n_sp]
@@ -734,8 +754,8 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
             row = row_of.get((s, g))
             if row is None:
                 c_code[j] = _CODE["not_species_level" if (s, g) in any_row else "no_factor"]
-                if by_length and (s, g) in any_row:
-                    c_length[j] = True
+                if (by_length or by_cov) and (s, g) in any_row:
+                    c_length[j], c_cov[j] = by_length, by_cov
                     units = table.loc[(table["species"] == s) & (table["gear"] == g), "effort_unit"].dropna()
                     c_unit[j] = str(units.iloc[0]) if len(units) else None
                     if c_unit[j] is not None:
@@ -778,6 +798,15 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         lconv = convert_by_length(fs, tables, h, hp[cand], sc[cand], species_all, count[cand], idx, probs,
                                   allow_unconverged=allow_unconverged, outside=outside_lengths)
         code[cand] = np.array([0 if c == "" else _CODE[c] for c in lconv.code], dtype=np.int8)
+    # records of species x gears with covariate factors only: converted with their own covariates
+    ccand = np.flatnonzero(c_cov[inv] & (code == _CODE["not_species_level"])) if c_cov.any() else np.zeros(0, int)
+    cconv = None
+    if len(ccand):
+        from calib.covariate_convert import convert_by_covariate
+
+        cconv = convert_by_covariate(fs, h, hp[ccand], sc[ccand], species_all, count[ccand], idx, probs,
+                                     allow_unconverged=allow_unconverged)
+        code[ccand] = np.array([0 if c == "" else _CODE[c] for c in cconv.code], dtype=np.int8)
     # effort units: a record-level check only when some gear has hauls in a unit its factor was
     # not fitted with (decided on the few gear x unit pairs present)
     n_units = max(len(units_all), 1)
@@ -792,21 +821,26 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     all_ok = bool(ok.all())
     n_combos = k  # species x gear entries; length-converted records get one entry each after them
     record_flag = None
-    if lconv is not None:
+    rflag = None
+    for conv_, cand_ in ((lconv, cand), (cconv, ccand)):
+        if conv_ is None:
+            continue
         # Each length-converted record has its own effective factor (its length composition's mix
-        # of class factors), so it gets its own row in the store's quantile table; the class draws
-        # themselves are kept once per class (lconv.draws).
-        orig = inv[cand].astype(np.int64)
+        # of class factors; or its own covariate values), so it gets its own row in the store's
+        # quantile table; the class draws themselves are kept once per class (lconv.draws).
+        orig = inv[cand_].astype(np.int64)
         inv = inv.astype(np.int64)
-        inv[cand] = k + np.arange(len(cand))
-        c_q = np.vstack([c_q, lconv.quantiles])
-        c_status = np.concatenate([c_status, lconv.status.astype(object)])
+        inv[cand_] = k + np.arange(len(cand_))
+        c_q = np.vstack([c_q, conv_.quantiles])
+        c_status = np.concatenate([c_status, conv_.status.astype(object)])
         c_key = c_key + [c_key[j] for j in orig]
         c_unit = np.concatenate([c_unit, c_unit[orig]])
         c_why = np.concatenate([c_why, c_why[orig]])
-        k = k + len(cand)
-        rflag = np.full(n_in, "", dtype=object)
-        rflag[cand] = lconv.flag
+        k = k + len(cand_)
+        if rflag is None:
+            rflag = np.full(n_in, "", dtype=object)
+        rflag[cand_] = conv_.flag
+    if rflag is not None:
         record_flag = rflag[ok]
         if not any(record_flag):
             record_flag = None
@@ -860,7 +894,8 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     rej["cpue"] = count[bad] / effort[hp_bad]
     rej["reason_code"] = _categories(code[bad].astype(np.int64) - 1, list(REJECT_CODES))
     rej["reason"] = _reason_texts(h, hp_bad, code[bad], inv[bad], c_key, c_unit, c_why, u_h, units_all,
-                                  occasions, fs.id, sorted(set(table["species"]) | set(post_species)))
+                                  occasions, fs.id, sorted(set(table["species"]) | set(post_species)),
+                                  fs.manifest.get("covariates"))
 
     # --- factors used and their draws
     rows, draw_frames = [], []
@@ -888,9 +923,16 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
                          "factor_median": cq.loc[(s_, g_, L)].iloc[1], "factor_lower": cq.loc[(s_, g_, L)].iloc[0],
                          "factor_upper": cq.loc[(s_, g_, L)].iloc[2], "n_draws": len(idx), "n_records": n_rec,
                          "n_domain_flagged": np.nan})
-    factors_used = pd.DataFrame(rows, columns=["species", "gear", "length_mm", "factor_status", "effort_unit",
-                                               "factor_median", "factor_lower", "factor_upper", "n_draws",
-                                               "n_records", "n_domain_flagged"])
+    used_columns = ["species", "gear", "length_mm", "factor_status", "effort_unit", "factor_median", "factor_lower",
+                    "factor_upper", "n_draws", "n_records", "n_domain_flagged"]
+    if cconv is not None and len(cconv.use):
+        # covariates: one row per species x gear x covariate values used (key text in 'covariates')
+        unit_of = fs.table.groupby(["species", "gear"])["effort_unit"].first()
+        for r in cconv.use.to_dict("records"):
+            rows.append({**r, "effort_unit": unit_of.get((r["species"], r["gear"]), ""), "n_draws": len(idx),
+                         "n_domain_flagged": np.nan})
+        used_columns.insert(3, "covariates")
+    factors_used = pd.DataFrame(rows, columns=used_columns)
     factor_draws = (pd.concat(draw_frames, ignore_index=True) if draw_frames
                     else pd.DataFrame({c: pd.Series(dtype="float" if c == "factor" else "int64")
                                        for c in DRAW_COLUMNS}).astype({"species": "str", "gear": "str"}))
@@ -926,6 +968,7 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
             "unconverged_converted": per_status["fail"],
             "domain_flagged": int(flagged.sum()),
             "length_converted": int((ok[cand]).sum()) if lconv is not None else 0,
+            "covariate_converted": int((ok[ccand]).sum()) if cconv is not None else 0,
         },
         "draws": {"available": int(n_total), "used": int(len(idx)), "thinned": draws is not None,
                   "seed": int(seed) if draws is not None else None},
@@ -940,8 +983,11 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
     manifest["conversion_id"] = "cv-" + hashlib.sha256(
         json.dumps(manifest, sort_keys=True, default=str).encode()).hexdigest()[:16]
     manifest["timestamp"] = utc_timestamp()
+    if cconv is not None:
+        manifest["covariates"] = fs.manifest.get("covariates")
     return Conversion(rejected=rej, factor_draws=factor_draws, factors=factors_used, manifest=manifest,
-                      notes=notes, store=store, length_factor_draws=length_draws, record_lengths=record_lengths)
+                      notes=notes, store=store, length_factor_draws=length_draws, record_lengths=record_lengths,
+                      covariate_factor_draws=cconv.draws if cconv is not None else None)
 
 
 def _text_codes(values: pd.Series) -> tuple[np.ndarray, list[str]]:
@@ -973,7 +1019,8 @@ def _small_int(values: np.ndarray, bound: int) -> np.ndarray:
 
 
 def _reason_texts(h: pd.DataFrame, hp: np.ndarray, code: np.ndarray, j: np.ndarray, c_key, c_unit, c_why,
-                  u_h: np.ndarray, units_all: list[str], occasions, factor_id: str, known_species: list[str]):
+                  u_h: np.ndarray, units_all: list[str], occasions, factor_id: str, known_species: list[str],
+                  covariates: dict | None = None):
     """One readable reason (what is wrong and what to do) per rejected record.
 
     Reasons depend only on (reason, species x gear, effort unit, source x year), so each
@@ -1025,6 +1072,10 @@ def _reason_texts(h: pd.DataFrame, hp: np.ndarray, code: np.ndarray, j: np.ndarr
         elif name == "no_lengths":
             t = (f"the factors for '{s}' with '{g}' depend on length, but this haul has no lengths for it: "
                  "add its measured fish to the lengths table (--lengths)")
+        elif name in ("covariate_missing", "covariate_level"):
+            from calib.covariate_convert import covariate_reason
+
+            t = covariate_reason(name, s, g, covariates or {}, factor_id)
         elif name == "outside_length_range":
             t = (f"some measured '{s}' lie outside the length range the factors for '{g}' were calibrated on "
                  f"(factor set {factor_id}, manifest 'lengths'): convert with --outside-lengths nearest to use "

@@ -77,6 +77,7 @@ def fit(
     length_min_fish: int = 1,
     design: str = "paired",
     period_by: str = "auto",
+    covariates: list[str] | None = None,
 ) -> FactorSet:
     """Fit conversion factors from calibration groups.
 
@@ -106,6 +107,9 @@ def fit(
         method "hierarchical" only; overdispersion "none" there means Poisson counts).
     period_by : side-by-side only: "auto", "column", "month", "season" or "year"
         (:mod:`calib.site_periods`).
+    covariates : hauls columns theta depends on (:mod:`calib.covariate_fit`): text columns as
+        per-level offsets (same level in every haul of a group), numeric ones as a slope on the
+        group mean. factors.csv gets one row per species x gear x level. Hierarchical method only.
 
     Returns
     -------
@@ -147,6 +151,8 @@ def fit(
                         "add a row for it (species, group) so it is pooled with the right group")
                 for s in unlisted
             ])
+    if covariates and length_bin is not None:
+        raise ValueError("--covariate and --length-bin cannot be combined yet; fit them separately")
     if length_bin is not None:
         if method != "hierarchical" or pooling != "partial":
             raise ValueError("--length-bin works with the hierarchical method and partial pooling only")
@@ -156,6 +162,16 @@ def fit(
                              overdispersion=overdispersion, draws=draws, tune=tune, chains=chains, seed=seed,
                              interval=interval, rules=rules, progressbar=progressbar,
                              min_class_fish=length_min_fish)
+    if covariates:
+        if method != "hierarchical" or pooling != "partial" or length_bin is not None:
+            raise ValueError("--covariate works with the hierarchical method and partial pooling, without "
+                             "--length-bin")
+        from calib.covariate_fit import fit_with_covariates
+
+        return fit_with_covariates(tables, counts, reference=reference, covariates=list(covariates),
+                                   groups_map=groups_map, overdispersion=overdispersion, draws=draws, tune=tune,
+                                   chains=chains, seed=seed, interval=interval, rules=rules,
+                                   progressbar=progressbar)
     cells = cells_mod.build_cells(tables.hauls, counts, reference, species_groups=groups_map)
     rules = rules or diagnostics.StatusRules()
 

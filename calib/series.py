@@ -1062,6 +1062,11 @@ def _read_converted(converted, extra=()) -> tuple[pd.DataFrame, pd.DataFrame, di
     except (OSError, ValueError) as err:
         raise InputError([Problem(str(d), None, None, f"the converted files cannot be read ({err})",
                                   "convert again into a new directory", False)]) from None
+    if manifest.get("counts", {}).get("covariate_converted"):
+        raise InputError([Problem(str(mp), None, None,
+                                  f"{manifest['counts']['covariate_converted']} records were converted with their own "
+                                  "covariate values; series and trend do not handle them yet",
+                                  "convert with a factor set fitted without --covariate", False)])
     if manifest.get("counts", {}).get("length_converted"):
         raise InputError([Problem(str(mp), None, None,
                                   f"{manifest['counts']['length_converted']} records were converted by length class; "

@@ -237,8 +237,10 @@ def test_every_record_is_converted_or_rejected_with_its_reason(files):
            **dict(zip(zip(conv.rejected["haul_id"], conv.rejected["species"]), conv.rejected["reason_code"]))}
     assert got == EXPECTED
     # the dataset holds every species-level reason; the length reasons need a length factor set and
-    # survey lengths (tests/test_length.py)
-    assert set(conv.rejected["reason_code"]) == set(REJECT_CODES) - {"no_lengths", "outside_length_range"}
+    # survey lengths (tests/test_length.py), the covariate reasons a covariate factor set
+    # (tests/test_covariates.py)
+    assert set(conv.rejected["reason_code"]) == set(REJECT_CODES) - {"no_lengths", "outside_length_range",
+                                                                     "covariate_missing", "covariate_level"}
     assert conv.n_in == len(EXPECTED) == conv.n_converted + conv.n_rejected
     assert (conv.n_converted, conv.n_rejected) == (7, 19)
     tables = load_tables(files["hauls"], files["catches"], species_recorded=files["recorded"])

@@ -1,0 +1,194 @@
+"""Convert survey records with covariate-dependent factors (factor sets fitted with ``--covariate``).
+
+Called by :func:`calib.convert.convert` for records whose species x gear has only covariate
+factors. Each record uses its own haul's covariate values, draw by draw:
+
+    theta_rec[d] = theta_gs[d] + sum_c offset_c[g, level_c(haul)][d] + sum_n slope[g, n][d] * (x_n(haul) - centre_n)
+    cpue_ref[d]  = cpue * exp(-theta_rec[d])
+
+(the model of :mod:`calib.covariate_model`; ``centre_n`` is the calibration mean, in the manifest).
+Records are grouped by their key (species, gear, levels, numeric values), so the draws are worked
+out once per key, not per record.
+
+Records are not converted (reasons in rejected.csv) when a covariate is blank or missing in the
+survey hauls (``covariate_missing``), when a categorical level was not among the calibrated
+levels (``covariate_level``), or when a factors.csv row used has status ``fail`` (``factor_fail``,
+unless allow_unconverged). A numeric value outside the range of the calibration groups' values is
+converted with the fitted slope (extrapolated) and flagged in domain_flag. A zero catch converts
+to zero.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+STATUS_ORDER = {"ok": 0, "warn": 1, "fail": 2}
+_CHUNK = 2000  # keys x draws at a time
+
+
+@dataclass
+class CovariateConversion:
+    """Result for the candidate records (one entry per record handed in).
+
+    code : (n,) '' converted, else the reject code name.
+    quantiles : (n, 3) lower, median, upper of the record's factor (NaN if rejected).
+    status : (n,) worst status of the factors.csv rows the record's factor rests on.
+    flag : (n,) domain_flag text added ('' none).
+    key : (n,) text of the record's covariate values, e.g. "day_night=night; depth_m=4.5".
+    draws : species, gear, covariates (key text), draw, factor, posterior_chain, posterior_draw:
+        the draws used, once per key, for keys of categorical covariates only (a numeric value
+        makes every record its own key; its draws follow from posterior.nc and the value).
+    use : species, gear, covariates, factor_status, factor_lower, factor_median, factor_upper,
+        n_records (per key of the converted records).
+    """
+
+    code: np.ndarray
+    quantiles: np.ndarray
+    status: np.ndarray
+    flag: np.ndarray
+    key: np.ndarray
+    draws: pd.DataFrame
+    use: pd.DataFrame
+
+
+def convert_by_covariate(fs, hauls: pd.DataFrame, hp: np.ndarray, sc: np.ndarray, species_all: list[str],
+                         count: np.ndarray, idx: np.ndarray, probs, *, allow_unconverged: bool = False
+                         ) -> CovariateConversion:
+    """Convert records (haul position ``hp`` into ``hauls``, species code ``sc``, ``count``) with the
+    covariate factors of ``fs``; ``idx`` are the posterior draws used (flat chain x draw index)."""
+    from calib.covariate_model import _safe
+
+    info = fs.manifest["covariates"]
+    cat = [c for c, v in info.items() if v["kind"] == "categorical"]
+    num = [c for c, v in info.items() if v["kind"] == "numeric"]
+    n = len(hp)
+    code = np.full(n, "", dtype=object)
+    q = np.full((n, 3), np.nan)
+    status = np.full(n, "", dtype=object)
+    flag = np.full(n, "", dtype=object)
+    post = fs.idata.posterior
+    n_chain, n_draw = post.sizes["chain"], post.sizes["draw"]
+
+    def flat(da, *dims):
+        return da.transpose("chain", "draw", *dims).values.reshape(n_chain * n_draw, *[da.sizes[d] for d in dims])
+
+    # per record: level index per categorical covariate (-1 blank, -2 not calibrated), numeric value
+    lev = np.zeros((n, len(cat)), dtype=np.int64)
+    val = np.zeros((n, len(num)))
+    missing = np.zeros(n, dtype=bool)
+    for k, c in enumerate(cat):
+        if c not in hauls.columns:
+            missing[:] = True
+            continue
+        col = hauls[c].astype("string").str.strip()
+        blank = (col.isna() | (col == "")).fillna(True).to_numpy(dtype=bool)[hp]
+        text = col.fillna("").to_numpy(dtype=object)[hp]
+        levels = list(info[c]["levels"])
+        pos = {lv: i for i, lv in enumerate(levels)}
+        lev[:, k] = [-1 if b else pos.get(str(t), -2) for t, b in zip(text, blank)]
+        missing |= lev[:, k] == -1
+        code[(lev[:, k] == -2) & (code == "")] = "covariate_level"
+    for k, c in enumerate(num):
+        if c not in hauls.columns or not pd.api.types.is_numeric_dtype(hauls[c]):
+            missing[:] = True
+            continue
+        v = hauls[c].to_numpy(dtype=float)[hp]
+        val[:, k] = v
+        missing |= ~np.isfinite(v)
+        lo, hi = info[c]["calibrated_range"]
+        for mask, word in ((v < lo, "below"), (v > hi, "above")):
+            text = f"{c} {word} the calibrated range of group means ({lo:g} to {hi:g}): factor extrapolated"
+            flag[mask] = np.where(flag[mask] == "", text, flag[mask] + "; " + text)
+    code[missing] = "covariate_missing"
+
+    table = fs.table
+    status_of = {(s, g, c, str(lv)): str(st) for s, g, c, lv, st in
+                 zip(table["species"], table["gear"], table["covariate"], table["level"], table["status"])}
+    gear_h = hauls["gear"].to_numpy(dtype=object)[hp]
+    spec_h = np.asarray(species_all, dtype=object)[sc]
+    key_text = np.full(n, "", dtype=object)
+    draw_frames, use_rows = [], []
+    rec = pd.DataFrame({"species": spec_h, "gear": gear_h, "rec": np.arange(n)})
+    for (s, g), part in rec.groupby(["species", "gear"], sort=True):
+        rows = part["rec"].to_numpy()
+        rows = rows[code[rows] == ""]
+        if not len(rows):
+            continue
+        base = flat(post["theta"].sel(gear=g, species=s))[idx]  # (D,)
+        offs = [flat(post[f"offset_{_safe(c)}"].sel(gear=g), f"level_{_safe(c)}")[idx] for c in cat]  # (D, L)
+        slopes = flat(post["slope"].sel(gear=g), "numeric")[idx] if num else None  # (D, N)
+        centre = np.array([info[c]["centre"] for c in num])
+        # one key per distinct (levels, values)
+        keys = np.column_stack([lev[rows].astype(float), val[rows]]) if (cat or num) else np.zeros((len(rows), 0))
+        ukeys, kinv = np.unique(keys, axis=0, return_inverse=True)
+        kinv = kinv.reshape(-1)
+        worst = np.zeros(len(ukeys), dtype=int)
+        texts = []
+        for u, kv in enumerate(ukeys):
+            parts, w = [], 0
+            for k, c in enumerate(cat):
+                lv = info[c]["levels"][int(kv[k])]
+                parts.append(f"{c}={lv}")
+                w = max(w, STATUS_ORDER.get(status_of.get((s, g, c, lv), "fail"), 2))
+            for k, c in enumerate(num):
+                parts.append(f"{c}={kv[len(cat) + k]:g}")
+                sts = [STATUS_ORDER.get(st, 2) for (s2, g2, c2, _), st in status_of.items()
+                       if (s2, g2, c2) == (s, g, c)]
+                w = max(w, max(sts) if sts else 2)
+            worst[u] = w
+            texts.append("; ".join(parts))
+        inv_rank = {v: k for k, v in STATUS_ORDER.items()}
+        key_text[rows] = np.asarray(texts, dtype=object)[kinv]
+        status[rows] = np.asarray([inv_rank[w] for w in worst], dtype=object)[kinv]
+        if not allow_unconverged:
+            failed = worst[kinv] == 2
+            code[rows[failed]] = "factor_fail"
+        ukq = np.full((len(ukeys), 3), np.nan)
+        for start in range(0, len(ukeys), _CHUNK):
+            ch = slice(start, start + _CHUNK)
+            th = np.broadcast_to(base[None, :], (len(ukeys[ch]), len(base))).copy()  # (U, D)
+            for k in range(len(cat)):
+                th += offs[k][:, ukeys[ch, k].astype(int)].T
+            if num:
+                th += (ukeys[ch, len(cat):] - centre[None, :]) @ slopes.T
+            f = np.exp(-th)
+            ukq[ch] = np.quantile(f, probs, axis=1).T
+            if not num:
+                for u in range(start, min(start + _CHUNK, len(ukeys))):
+                    draw_frames.append(pd.DataFrame({
+                        "species": s, "gear": g, "covariates": texts[u], "draw": np.arange(len(idx)),
+                        "factor": f[u - start], "posterior_chain": idx // n_draw, "posterior_draw": idx % n_draw}))
+        q[rows] = ukq[kinv]
+        zero = count[rows] == 0
+        q[rows[zero]] = 0.0  # a zero catch converts to zero whatever the factor
+        ok = code[rows] == ""
+        n_use = np.bincount(kinv[ok], minlength=len(ukeys))
+        for u in np.flatnonzero(n_use):
+            use_rows.append({"species": s, "gear": g, "covariates": texts[u], "factor_status": inv_rank[worst[u]],
+                             "factor_lower": ukq[u, 0], "factor_median": ukq[u, 1], "factor_upper": ukq[u, 2],
+                             "n_records": int(n_use[u])})
+    q[code != ""] = np.nan
+    draws = pd.concat(draw_frames, ignore_index=True) if draw_frames else pd.DataFrame(
+        columns=["species", "gear", "covariates", "draw", "factor", "posterior_chain", "posterior_draw"])
+    use = pd.DataFrame(use_rows, columns=["species", "gear", "covariates", "factor_status", "factor_lower",
+                                          "factor_median", "factor_upper", "n_records"])
+    return CovariateConversion(code=code, quantiles=q, status=status, flag=flag, key=key_text, draws=draws, use=use)
+
+
+def covariate_reason(name: str, s: str, g: str, info: dict, factor_id: str) -> str:
+    """Reason text of a record rejected for its covariates (rejected.csv)."""
+    cat = {c: v["levels"] for c, v in info.items() if v["kind"] == "categorical"}
+    listed = "; ".join(f"{c}: {', '.join(v)}" for c, v in cat.items())
+    if name == "covariate_level":
+        return (f"the factors for '{s}' with '{g}' (factor set {factor_id}) depend on covariates and this haul's "
+                f"level was not calibrated (calibrated levels: {listed}): calibrate at that level, or record the "
+                "haul under a calibrated level if it truly is one")
+    return (f"the factors for '{s}' with '{g}' (factor set {factor_id}) depend on the covariates "
+            f"{', '.join(info)}, which are blank or missing for this haul: add the column(s) to the survey hauls "
+            "and fill them in")
+
+
+__all__ = ["convert_by_covariate", "covariate_reason", "CovariateConversion"]
