@@ -319,6 +319,8 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
             parser.error("--covariate and --length-bin cannot be combined yet; fit them separately")
         if args.method != "hierarchical" or args.pooling != "partial":
             parser.error("--covariate works with --method hierarchical and --pooling partial only")
+        if getattr(args, "design", "paired") != "paired":
+            parser.error("--covariate works with --design paired only (side-by-side covariate factors are not built)")
     for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups", "length_min_fish"):
         value = getattr(args, name, None)
         if value is not None and value < (0 if name == "tune" else 1):

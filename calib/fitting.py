@@ -126,8 +126,8 @@ def fit(
     if design == "side-by-side":
         from calib.model_sidebyside import fit_side_by_side
 
-        if length_bin is not None:
-            raise ValueError("length_bin works with design 'paired' only")
+        if length_bin is not None or covariates:
+            raise ValueError("length_bin and covariates work with design 'paired' only")
         if method != "hierarchical":
             raise ValueError("design 'side-by-side' is fitted with method 'hierarchical' only")
         return fit_side_by_side(
