@@ -122,7 +122,7 @@ def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0)
     the species' total > 0), n_caught (fish of the species this gear caught there), rhat,
     ess_bulk, ess_tail (ArviZ rank-normalised R-hat and ESS of theta[g, s]), prior_ratio
     (posterior sd / prior sd of theta[g, s]; the prior sd comes from the ``prior`` group,
-    nan without one), ppp (:func:`split_check`).
+    nan without one), ppp (:func:`split_check`; NaN with ``ppc_draws=0``).
     """
     import arviz as az
 
@@ -149,7 +149,10 @@ def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0)
         frame["prior_ratio"] = frame["post_sd"] / frame["prior_sd"]
     else:
         frame["prior_ratio"] = np.nan
-    ppp = split_check(idata, cells, ppc_draws=ppc_draws, seed=seed)
+    if ppc_draws > 0:
+        ppp = split_check(idata, cells, ppc_draws=ppc_draws, seed=seed)
+    else:  # no split check (e.g. the lognormal-patchiness model, checked by calib.compare)
+        ppp = support[["gear", "species"]].assign(ppp=np.nan)
     frame = frame.merge(ppp, on=["gear", "species"], how="left")
     return frame[DIAGNOSTIC_COLUMNS].reset_index(drop=True)
 

@@ -17,7 +17,7 @@ from __future__ import annotations
 import hashlib
 import json
 import platform
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -126,6 +126,10 @@ class FactorSet:
     checks: pd.DataFrame
     idata: object
     manifest: dict
+    # The calibration cells it was fitted from (in memory only, not saved; used by comparisons).
+    cells: object = None
+    # Extra result tables saved beside factors.csv (file name -> DataFrame), e.g. comparison.csv.
+    extras: dict = field(default_factory=dict)
 
     @property
     def id(self) -> str:
@@ -148,7 +152,9 @@ class FactorSet:
         m = self.manifest
         level = int(round(100 * m["settings"]["interval"]))
         lines = [
-            f"Factor set {self.id}  (method: {m['method']}, reference gear: {self.reference})",
+            f"Factor set {self.id}  (method: {m['method']}"
+            + (f", patchiness: {m['patchiness']}" if m.get("patchiness") else "")
+            + f", reference gear: {self.reference})",
             f"  {m['cells']['n_groups']} calibration groups, {m['cells']['n_cells']} group x species cells "
             f"with a non-zero total; {m['cells']['zero_total_cells_dropped']} zero-total cells carried no information.",
         ]
@@ -181,6 +187,8 @@ class FactorSet:
             self.table.to_csv(tmp / "factors.csv", index=False, float_format="%.6g")
             self.checks.to_csv(tmp / "checks.csv", index=False, float_format="%.6g")
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+            for name, frame in self.extras.items():
+                frame.to_csv(tmp / name, index=False, float_format="%.6g")
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
 
