@@ -26,7 +26,10 @@ nodes are centred at the mode of the integrand and scaled by its curvature there
 integrand (a large count pins the tow effect down) is integrated as accurately as a flat one.
 The mode has a closed form, e_hat = sigma^2 y - W(sigma^2 exp(eta + sigma^2 y)) with W the
 Lambert W function, computed on the log scale by five Newton steps (exact to 1e-14 relative
-over the range used; see tests/test_patchiness.py). The density b_is is shared by the gears of a group,
+over the range used; see tests/test_patchiness.py). When differentiating, the nodes' centre and
+scale are held fixed (the value depends on them only through the quadrature error), which keeps
+the gradient cheap and agrees with the exact one to the quadrature's accuracy; NUTS stays exact
+because its accept step uses the log-density itself. The density b_is is shared by the gears of a group,
 so it is sampled (non-centred), as are theta (non-centred hierarchy as in :mod:`calib.model`),
 the density mean m_s and sd d_s per species, and the tow sd sigma pooled across species per
 gear combination.
