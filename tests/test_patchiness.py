@@ -265,3 +265,35 @@ def test_compare_picks_the_generating_patchiness_and_the_right_model_recovers(tr
     true_factor = np.exp(-truth_theta.loc[species].to_numpy())
     covered = (t["factor_lower"].loc[species].to_numpy() <= true_factor) & (true_factor <= t["factor_upper"].loc[species].to_numpy())
     assert covered.sum() >= 4
+
+
+def test_spread_check_on_gamma_data_holds_the_observed_spread(small_fit):
+    """The spread-versus-total check on the shared small gamma-patchiness fit (3 gears, 30 groups):
+    the observed spread lies inside the default model's 90% band in most bins, and each bin's
+    sampling-alone value is the mean of 1/n (a binomial share has variance p(1-p)/n)."""
+    from types import SimpleNamespace
+
+    from calib.compare import spread_check
+
+    _, cells, _, idata = small_fit
+    fs = SimpleNamespace(manifest={"patchiness": "gamma"}, idata=idata)
+    table = spread_check({"gamma": fs}, cells, n_bins=4, n_draws=200, seed=1)
+    assert table["n_cells"].sum() == cells.n_cells
+    inside = (table["observed"] >= table["gamma_lower"]) & (table["observed"] <= table["gamma_upper"])
+    assert inside.sum() >= len(table) - 1
+    n = cells.totals()
+    first = table.iloc[0]
+    in_bin = (n >= first["total_from"]) & (n <= first["total_to"])
+    assert first["binomial_only"] == pytest.approx(float((1.0 / n[in_bin]).mean()))
+
+
+def test_patchiness_figure_reads_the_table():
+    from calib.plots import patchiness_spread_figure
+
+    table = pd.DataFrame({"bin": [1, 2], "total_from": [1, 10], "total_to": [9, 80], "n_cells": [5, 5],
+                          "observed": [0.5, 0.2], "binomial_only": [0.3, 0.03],
+                          "gamma_median": [0.45, 0.22], "gamma_lower": [0.3, 0.15], "gamma_upper": [0.6, 0.3],
+                          "lognormal_median": [0.4, 0.25], "lognormal_lower": [0.3, 0.2], "lognormal_upper": [0.5, 0.3]})
+    fig = patchiness_spread_figure(table)
+    labels = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert labels[:2] == ["gamma (90% band)", "lognormal (90% band)"] and "observed" in labels
