@@ -216,9 +216,9 @@ def _cmd_fit(args) -> int:
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
         n_boot=args.bootstrap_reps, rules=_status_rules(args.status_rule), progressbar=not args.quiet,
     )
+    if (args.compare or args.patchiness) and args.method != "hierarchical":
+        return _usage_error("--compare and --patchiness need --method hierarchical")
     if args.compare:
-        if args.method != "hierarchical":
-            return _usage_error("--compare needs --method hierarchical")
         from calib.compare import compare_patchiness
 
         factor_set, comparison = compare_patchiness(args.hauls, args.catches, patchiness=args.patchiness, **options)

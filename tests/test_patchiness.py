@@ -297,3 +297,37 @@ def test_patchiness_figure_reads_the_table():
     fig = patchiness_spread_figure(table)
     labels = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
     assert labels[:2] == ["gamma (90% band)", "lognormal (90% band)"] and "observed" in labels
+
+
+def test_patchiness_options_need_the_hierarchical_method(capsys):
+    from calib.cli import main
+
+    code = main(["fit", "--hauls", "h.csv", "--catches", "c.csv", "--reference", "A", "--out", "o",
+                 "--method", "glm", "--compare"])
+    assert code == 2
+    assert "--method hierarchical" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_cli_compare_writes_comparison_files(tmp_path):
+    """`calib fit --compare` on 3 species x 60 pairs (2 chains x 200 + 200): the kept factor set,
+    comparison.csv with both variants on the same number of cells, spread_check.csv, manifest."""
+    import json
+
+    from calib.cli import main
+
+    study = simulate_calibration(n_groups=60, gears=["A", "B"], theta={"B": [-0.8, 0.0, 0.8]},
+                                 log_density_mean=[2.0] * 3, patchiness="lognormal", tow_sd=0.8, seed=3,
+                                 species=["pinfish", "blue crab", "hogchoker"], effort={"A": (0.8, 1.2), "B": (0.8, 1.2)})
+    study.hauls.to_csv(tmp_path / "h.csv", index=False)
+    study.catches.to_csv(tmp_path / "c.csv", index=False)
+    out = tmp_path / "fs"
+    assert main(["fit", "--hauls", str(tmp_path / "h.csv"), "--catches", str(tmp_path / "c.csv"), "--reference", "A",
+                 "--out", str(out), "--compare", "--draws", "200", "--tune", "200", "--quiet"]) == 0
+    table = pd.read_csv(out / "comparison.csv")
+    assert set(table["variant"]) == {"gamma", "lognormal"}
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert (table["n_obs"] == manifest["cells"]["n_cells"]).all()
+    assert manifest["comparison"]["kept"] == manifest["patchiness"]
+    spread = pd.read_csv(out / "spread_check.csv")
+    assert spread["n_cells"].sum() == manifest["cells"]["n_cells"]
