@@ -218,6 +218,8 @@ def _cmd_fit(args) -> int:
     )
     if (args.compare or args.patchiness) and args.method != "hierarchical":
         return _usage_error("--compare and --patchiness need --method hierarchical")
+    if (args.compare or args.patchiness == "lognormal") and args.pooling != "partial":
+        return _usage_error("--patchiness lognormal (and so --compare) is built with --pooling partial only")
     if args.compare:
         from calib.compare import compare_patchiness
 
