@@ -123,6 +123,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="side-by-side: what counts as the same period. auto: the hauls table's 'period' "
                         "column if it has one, else the month (e.g. 2024-05); season: winter Dec-Feb, "
                         "spring Mar-May, summer Jun-Aug, autumn Sep-Nov of a year; year: the year")
+    p.add_argument("--patchiness", choices=["gamma", "lognormal"], default=None,
+                   help="how catches vary from tow to tow. gamma (default): each group's catch is split "
+                        "among the gears (Dirichlet-multinomial). lognormal: every tow carries the same "
+                        "multiplicative noise whatever its gear; fitted to the counts themselves (slower)")
+    p.add_argument("--compare", action="store_true",
+                   help="fit both patchiness forms to the same counts, say which the data support "
+                        "(leave-one-out cross-validation) and keep that one, unless --patchiness names one; "
+                        "writes OUT/comparison.csv and OUT/spread_check.csv")
     p.add_argument("--species-recorded", metavar="FILE", default=None,
                    help="optional table (source, species, year_from, year_to): zeros are completed only "
                         "for species a source recorded")
@@ -245,8 +253,8 @@ def _usage_error(message: str) -> int:
 def _cmd_fit(args) -> int:
     from calib.fitting import fit
 
-    factor_set = fit(
-        args.hauls, args.catches, lengths=args.lengths, reference=args.reference, method=args.method,
+    options = dict(
+        lengths=args.lengths, reference=args.reference, method=args.method,
         species_recorded=args.species_recorded, species_names=args.species_names,
         overdispersion=args.overdispersion, pooling=args.pooling, species_groups=args.species_groups,
         draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed, interval=args.interval,
@@ -255,9 +263,28 @@ def _cmd_fit(args) -> int:
         design=args.design, period_by=args.period_by,
         covariates=args.covariate or None,
     )
+    if (args.compare or args.patchiness) and args.method != "hierarchical":
+        return _usage_error("--compare and --patchiness need --method hierarchical")
+    if (args.compare or args.patchiness == "lognormal") and args.pooling != "partial":
+        return _usage_error("--patchiness lognormal (and so --compare) is built with --pooling partial only")
+    if args.compare:
+        from calib.compare import compare_patchiness
+
+        factor_set, comparison = compare_patchiness(args.hauls, args.catches, patchiness=args.patchiness, **options)
+    else:
+        factor_set = fit(args.hauls, args.catches, patchiness=args.patchiness or "gamma", **options)
     factor_set.save(args.out)
     print(factor_set.summary())
-    print(f"\nWrote {args.out}/factors.csv, checks.csv, posterior.nc, manifest.json")
+    files = ["factors.csv", "checks.csv", "posterior.nc", "manifest.json"]
+    if args.compare:
+        print("\nWhich patchiness? (PSIS-LOO on each cell's split given its total)")
+        print(comparison.table.to_string(index=False, float_format=lambda v: f"{v:.2f}"))
+        print("\nSpread of the split by group total (observed vs each form's 90% predictive band):")
+        print(comparison.spread.to_string(index=False, float_format=lambda v: f"{v:.3g}"))
+        print("\n" + comparison.verdict)
+        print(f"Kept: {factor_set.manifest['comparison']['kept']}.")
+        files += [f"{name}.csv" for name in factor_set.extra_tables]
+    print(f"\nWrote {args.out}/" + ", ".join(files))
     return 0
 
 

@@ -124,7 +124,8 @@ def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0,
     ess_bulk, ess_tail (ArviZ rank-normalised R-hat and ESS of theta[g, s]), prior_ratio
     (posterior sd / prior sd of theta[g, s]; the prior sd comes from the ``prior`` group,
     nan without one), ppp (:func:`split_check`, or the caller's own ``ppp`` table with columns
-    gear, species, ppp for models whose replicates are not a split, e.g. the side-by-side model).
+    gear, species, ppp for models whose replicates are not a split, e.g. the side-by-side model;
+    NaN with ``ppc_draws=0``, e.g. the lognormal-patchiness model, checked by calib.compare).
     """
     import arviz as az
 
@@ -151,8 +152,10 @@ def factor_diagnostics(idata, cells: Cells, ppc_draws: int = 200, seed: int = 0,
         frame["prior_ratio"] = frame["post_sd"] / frame["prior_sd"]
     else:
         frame["prior_ratio"] = np.nan
-    if ppp is None:
+    if ppp is None and ppc_draws > 0:
         ppp = split_check(idata, cells, ppc_draws=ppc_draws, seed=seed)
+    elif ppp is None:  # no split check (e.g. the lognormal-patchiness model, checked by calib.compare)
+        ppp = support[["gear", "species"]].assign(ppp=np.nan)
     frame = frame.merge(ppp, on=["gear", "species"], how="left")
     return frame[DIAGNOSTIC_COLUMNS].reset_index(drop=True)
 

@@ -49,7 +49,7 @@ FACTOR_COLUMNS = [
 ]
 
 # Optional result tables a factor set may carry (saved as NAME.csv).
-EXTRA_TABLES = ("length_split",)
+EXTRA_TABLES = ("length_split", "covariate_effects", "comparison", "spread_check")
 
 CAUTION = (
     "Conversion factors hold only for the gears, size range, habitats and seasons of the "
@@ -129,8 +129,11 @@ class FactorSet:
     checks: pd.DataFrame
     idata: object
     manifest: dict
-    # Further result tables saved as NAME.csv beside factors.csv (e.g. length_split for length fits).
+    # Further result tables saved as NAME.csv beside factors.csv and read back by ``load`` (names in
+    # EXTRA_TABLES): length_split (length fits), covariate_effects, comparison and spread_check (--compare).
     extra_tables: dict = field(default_factory=dict)
+    # The calibration cells it was fitted from (in memory only, not saved; used by comparisons).
+    cells: object = None
 
     @property
     def id(self) -> str:
@@ -156,7 +159,9 @@ class FactorSet:
         """Plain-text summary: what was fitted and each factor with its interval and status."""
         m = self.manifest
         level = int(round(100 * m["settings"]["interval"]))
-        lines = [f"Factor set {self.id}  (method: {m['method']}, reference gear: {self.reference})"]
+        lines = [f"Factor set {self.id}  (method: {m['method']}"
+                 + (f", patchiness: {m['patchiness']}" if m.get("patchiness") else "")
+                 + f", reference gear: {self.reference})"]
         lengths = m.get("lengths")
         if lengths:
             lines.append(
@@ -210,7 +215,8 @@ class FactorSet:
         return f"<FactorSet {self.id}: {len(self.table)} factors, reference {self.reference}>"
 
     def save(self, directory: str | Path) -> Path:
-        """Write factors.csv, checks.csv, posterior.nc and manifest.json atomically into ``directory``."""
+        """Write factors.csv, checks.csv, posterior.nc, manifest.json and the extra tables (NAME.csv)
+        atomically into ``directory``."""
         directory = Path(directory)
         with atomic_directory(directory) as tmp:
             self.table.to_csv(tmp / "factors.csv", index=False, float_format="%.6g")

@@ -27,6 +27,7 @@ from calib.factors import (
 
 METHODS = ("hierarchical", "ratio", "glm")
 DESIGNS = ("paired", "side-by-side")
+PATCHINESS = ("gamma", "lognormal")
 
 
 def _as_tables(hauls, catches, lengths, species_recorded=None, species_names=None):
@@ -64,6 +65,7 @@ def fit(
     method: str = "hierarchical",
     overdispersion: str = "dirichlet-multinomial",
     pooling: str = "partial",
+    patchiness: str = "gamma",
     species_groups=None,
     draws: int = 1000,
     tune: int = 1000,
@@ -91,6 +93,9 @@ def fit(
         "glm" (conditional multinomial logit maximum likelihood, Wald interval).
     overdispersion : "dirichlet-multinomial" (default) or "none" (plain multinomial split).
     pooling : "partial" (species pooled per gear and pooling group) or "none".
+    patchiness : "gamma" (default: the Dirichlet-multinomial split of calib.model) or
+        "lognormal" (unconditional Poisson-lognormal counts, calib.model_lognormal; method
+        "hierarchical" only).
     species_recorded, species_names : optional paths to the intake tables (which species each
         source recorded in which years; partner names mapped to accepted names).
     species_groups : optional path to a table (species, group) or a dict species -> group.
@@ -120,6 +125,10 @@ def fit(
 
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, not {method!r}")
+    if patchiness not in PATCHINESS:
+        raise ValueError(f"patchiness must be one of {PATCHINESS}, not {patchiness!r}")
+    if patchiness != "gamma" and method != "hierarchical":
+        raise ValueError("--patchiness lognormal needs --method hierarchical")
     if not 0 < interval < 1:
         raise ValueError("interval must be between 0 and 1, e.g. 0.9")
     tables = _as_tables(hauls, catches, lengths, species_recorded, species_names)
@@ -180,7 +189,21 @@ def fit(
                 "prior_draws": 2000, "posterior_predictive_draws": 200}
     spec_dict: dict = {}
     divergences = None
-    if method == "hierarchical":
+    if method == "hierarchical" and patchiness == "lognormal":
+        from calib import model_lognormal
+
+        spec = model_lognormal.LognormalSpec(pooling=pooling)
+        spec_dict = spec.to_dict()
+        pm_model = model_lognormal.build_model(cells, spec)
+        idata = model_lognormal.sample(pm_model, cells, draws=draws, tune=tune, chains=chains, seed=seed,
+                                       progressbar=progressbar, target_accept=settings["target_accept"],
+                                       prior_draws=settings["prior_draws"])
+        # R-hat, ESS and prior_ratio as for every model; the split check (ppp) is the default
+        # model's and is replaced by the spread-versus-total check of `calib fit --compare`.
+        diag = diagnostics.factor_diagnostics(idata, cells, ppc_draws=0, seed=seed)
+        divergences = int(diagnostics.divergences(idata))
+        summary = summarise_theta_draws(idata.posterior["theta"], interval)
+    elif method == "hierarchical":
         from calib import model as model_mod
 
         spec = model_mod.ModelSpec(overdispersion=overdispersion, pooling=pooling)
@@ -219,6 +242,7 @@ def fit(
     manifest = {
         "tool": "calib",
         "method": method,
+        "patchiness": patchiness if method == "hierarchical" else None,
         "reference": reference,
         "reference_effort_unit": cells.effort_unit.get(reference, ""),
         "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
@@ -240,7 +264,7 @@ def fit(
     manifest["timestamp"] = utc_timestamp()
     manifest["factor_set_id"] = factor_set_id(manifest, table)
     idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
-    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest)
+    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest, cells=cells)
 
 
 def _baseline_diagnostics(cells, point: pd.DataFrame) -> pd.DataFrame:

@@ -672,4 +672,40 @@ def plot_split_by_length(split, *, species=None, ncols: int = 3):
         axes[0].legend(fontsize=7, frameon=False)
     fig.suptitle("Split of each length class's catch between gears: observed (points) and fitted (bands)",
                  fontsize=9)
+# --- patchiness check
+
+
+def patchiness_spread_figure(spread, *, title: str | None = None):
+    """Spread of the split against the group total: observed and each patchiness form's band.
+
+    ``spread`` is the spread check table (``spread_check.csv`` written by ``calib fit --compare``,
+    or its path): one row per bin of group totals with ``observed``, ``binomial_only`` and, per
+    variant, ``{name}_median``, ``{name}_lower``, ``{name}_upper``. Nothing is recomputed.
+    x: group total (fish, log scale; the bin's range as a horizontal bar); y: spread of the
+    followed gear's share, (share - expected)^2 / (p (1 - p)), averaged over the bin.
+    Returns a matplotlib Figure.
+    """
+    import pandas as pd
+
+    if not isinstance(spread, pd.DataFrame):
+        spread = pd.read_csv(spread)
+    names = [c[: -len("_median")] for c in spread.columns if c.endswith("_median")]
+    colours = categorical_colours(names)
+    fig, (ax,) = new_figure(1, panel_size=(5.2, 3.4))
+    lo = spread["total_from"].to_numpy(dtype=float)
+    hi = spread["total_to"].to_numpy(dtype=float)
+    x = np.sqrt(np.maximum(lo, 1.0) * np.maximum(hi, 1.0))
+    for k, name in enumerate(names):
+        shift = x * (1.0 + 0.06 * (k - (len(names) - 1) / 2))  # side by side, same bins
+        ax.fill_between(shift, spread[f"{name}_lower"], spread[f"{name}_upper"], color=colours[name], alpha=0.22,
+                        linewidth=0)
+        ax.plot(shift, spread[f"{name}_median"], color=colours[name], linewidth=1.6, label=f"{name} (90% band)")
+    ax.plot(x, spread["binomial_only"], color=NEUTRAL, linestyle="--", linewidth=1.0, label="sampling alone (1/n)")
+    ax.errorbar(x, spread["observed"], xerr=[x - lo, hi - x], fmt="o", color=INK, markersize=4, elinewidth=0.6,
+                capsize=0, label="observed")
+    ax.set_xscale("log")
+    ax.set_xlabel("group total of the species (fish)", fontsize=9)
+    ax.set_ylabel("spread of the split", fontsize=9)
+    ax.set_title(title or "Does the split's spread grow with the catch as each form predicts?", fontsize=9)
+    ax.legend(fontsize=7, frameon=False)
     return fig
