@@ -672,6 +672,9 @@ def plot_split_by_length(split, *, species=None, ncols: int = 3):
         axes[0].legend(fontsize=7, frameon=False)
     fig.suptitle("Split of each length class's catch between gears: observed (points) and fitted (bands)",
                  fontsize=9)
+    return fig
+
+
 # --- patchiness check
 
 
