@@ -35,7 +35,6 @@ from pathlib import Path
 
 import matplotlib.pyplot as plt
 import numpy as np
-import pandas as pd
 
 import calib
 from calib.convert import convert
