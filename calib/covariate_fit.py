@@ -13,8 +13,6 @@ centring (the calibration mean), scale and reported values of every covariate.
 
 from __future__ import annotations
 
-from dataclasses import asdict
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -96,9 +94,7 @@ def fit_with_covariates(tables, counts, *, reference: str, covariates, groups_ma
     from calib import covariate_model as cm
     from calib import diagnostics
     from calib import model as model_mod
-    from calib.convert import calibration_domain
-    from calib.factors import (FactorSet, factor_set_id, file_sha256, software_versions,
-                               summarise_theta_draws, utc_timestamp)
+    from calib.factors import assemble_factor_set, summarise_theta_draws
     from calib.fitting import _factor_table
 
     hauls_file = str(tables.files.get("hauls") or "hauls")
@@ -176,32 +172,15 @@ def fit_with_covariates(tables, counts, *, reference: str, covariates, groups_ma
                        "scale": cc.scale[n], "reported_at_percentiles": list(cells_mod.COVARIATE_PERCENTILES),
                        "reported_values": cc.percentiles[n],
                        "calibrated_range": [float(cc.group_values[n].min()), float(cc.group_values[n].max())]}
-    manifest = {
-        "tool": "calib",
-        "method": "hierarchical",
-        "reference": reference,
-        "reference_effort_unit": cc.cells.effort_unit.get(reference, ""),
-        "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
-                   if p is not None and Path(p).exists()},
-        "model": {"variant": "covariates", **spec.to_dict()},
-        "settings": settings,
-        "status_rules": asdict(rules),
-        "divergences": divergences,
-        "cells": dict(cc.cells.report),
-        "gears": cc.cells.gears,
-        "species": cc.cells.species,
-        "species_groups": groups_map,
-        "covariates": cov_info,
-        "covariate_rows": ("one factors.csv row per species x gear x level of each covariate, the other "
-                           "covariates at their baseline level and calibration mean"),
-        "versions": software_versions(),
-    }
-    manifest["domain"] = calibration_domain(tables.hauls)
-    manifest["timestamp"] = utc_timestamp()
-    manifest["factor_set_id"] = factor_set_id(manifest, table)
-    idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
-    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest,
-                     extra_tables={"covariate_effects": covariate_summary(idata, cc, interval)})
+    return assemble_factor_set(
+        tables, table, checks, idata, method="hierarchical", reference=reference,
+        effort_unit=cc.cells.effort_unit, model={"variant": "covariates", **spec.to_dict()}, settings=settings,
+        rules=rules, divergences=divergences, cells_report=cc.cells.report, gears=cc.cells.gears,
+        species=cc.cells.species, species_groups=groups_map, extra={
+            "covariates": cov_info,
+            "covariate_rows": ("one factors.csv row per species x gear x level of each covariate, the other "
+                               "covariates at their baseline level and calibration mean")},
+        extra_tables={"covariate_effects": covariate_summary(idata, cc, interval)})
 
 
 def is_covariate_factor_set(factor_set) -> bool:

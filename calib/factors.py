@@ -80,6 +80,48 @@ def software_versions() -> dict[str, str]:
     return versions
 
 
+def assemble_factor_set(tables, table: pd.DataFrame, checks: pd.DataFrame, idata, *, method: str,
+                        reference: str, effort_unit: dict, model: dict, settings: dict, rules, divergences,
+                        cells_report: dict, gears, species, species_groups, extra: dict | None = None,
+                        domain_hauls: pd.DataFrame | None = None, **factor_set_fields) -> "FactorSet":
+    """The manifest every fit writes, and the FactorSet around it (one place for all fit variants).
+
+    Manifest: the inputs by path and SHA-256, the model spec, sampler settings, status rules,
+    divergences, the cells report, gears, species, species groups, ``extra`` entries of the
+    variant (patchiness, design, lengths, covariates, ...), software versions, the calibration
+    domain (months and covariate ranges of ``domain_hauls``, default the tables' hauls, so convert
+    can flag records outside it), a timestamp and the factor-set id. ``factor_set_fields`` go to
+    the FactorSet (e.g. ``extra_tables``, ``cells``).
+    """
+    from dataclasses import asdict
+
+    from calib.convert import calibration_domain
+
+    manifest = {
+        "tool": "calib",
+        "method": method,
+        "reference": reference,
+        "reference_effort_unit": effort_unit.get(reference, ""),
+        "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
+                   if p is not None and Path(p).exists()},
+        "model": model,
+        "settings": settings,
+        "status_rules": asdict(rules),
+        "divergences": divergences,
+        "cells": dict(cells_report),
+        "gears": gears,
+        "species": species,
+        "species_groups": species_groups,
+        **(extra or {}),
+        "versions": software_versions(),
+    }
+    manifest["domain"] = calibration_domain(tables.hauls if domain_hauls is None else domain_hauls)
+    manifest["timestamp"] = utc_timestamp()
+    manifest["factor_set_id"] = factor_set_id(manifest, table)
+    idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
+    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest, **factor_set_fields)
+
+
 def factor_set_id(manifest: dict, table: pd.DataFrame) -> str:
     """Hash of the manifest (without its timestamp) and the factor table.
 

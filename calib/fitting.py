@@ -7,23 +7,13 @@ same labels, and a manifest.
 
 from __future__ import annotations
 
-from dataclasses import asdict
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from calib import cells as cells_mod
 from calib.errors import InputError, Problem
-from calib.factors import (
-    FACTOR_COLUMNS,
-    FactorSet,
-    factor_set_id,
-    file_sha256,
-    software_versions,
-    summarise_theta_draws,
-    utc_timestamp,
-)
+from calib.factors import FACTOR_COLUMNS, FactorSet, assemble_factor_set, summarise_theta_draws
 
 METHODS = ("hierarchical", "ratio", "glm")
 DESIGNS = ("paired", "side-by-side")
@@ -239,32 +229,11 @@ def fit(
     table = _factor_table(cells, summary, diag, divergences, rules, interval)
     checks = diag.copy()
 
-    manifest = {
-        "tool": "calib",
-        "method": method,
-        "patchiness": patchiness if method == "hierarchical" else None,
-        "reference": reference,
-        "reference_effort_unit": cells.effort_unit.get(reference, ""),
-        "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
-                   if p is not None and Path(p).exists()},
-        "model": spec_dict,
-        "settings": settings,
-        "status_rules": asdict(rules),
-        "divergences": divergences,
-        "cells": {k: v for k, v in cells.report.items()},
-        "gears": cells.gears,
-        "species": cells.species,
-        "species_groups": groups_map,
-        "versions": software_versions(),
-    }
-    from calib.convert import calibration_domain
-
-    # What the calibration covered (months, covariate ranges), so convert can flag records outside it.
-    manifest["domain"] = calibration_domain(tables.hauls)
-    manifest["timestamp"] = utc_timestamp()
-    manifest["factor_set_id"] = factor_set_id(manifest, table)
-    idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
-    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest, cells=cells)
+    return assemble_factor_set(
+        tables, table, checks, idata, method=method, reference=reference, effort_unit=cells.effort_unit,
+        model=spec_dict, settings=settings, rules=rules, divergences=divergences, cells_report=cells.report,
+        gears=cells.gears, species=cells.species, species_groups=groups_map,
+        extra={"patchiness": patchiness if method == "hierarchical" else None}, cells=cells)
 
 
 def _baseline_diagnostics(cells, point: pd.DataFrame) -> pd.DataFrame:

@@ -14,8 +14,6 @@ the calibrated range of every species, and what was left out.
 
 from __future__ import annotations
 
-from dataclasses import asdict
-from pathlib import Path
 
 import numpy as np
 
@@ -77,9 +75,7 @@ def fit_by_length(tables, counts, *, reference: str, length_bin: float, groups_m
     from calib import diagnostics
     from calib import length_model as lm
     from calib import model as model_mod
-    from calib.convert import calibration_domain
-    from calib.factors import (FactorSet, factor_set_id, file_sha256, software_versions,
-                               summarise_theta_draws, utc_timestamp)
+    from calib.factors import assemble_factor_set, summarise_theta_draws
     from calib.fitting import _factor_table
 
     lengths_file = tables.files.get("lengths") or "lengths"
@@ -125,43 +121,26 @@ def fit_by_length(tables, counts, *, reference: str, length_bin: float, groups_m
     checks.insert(1, "species", checks["stratum"].map(strata["species"]))
     checks.insert(2, "length_mm", checks["stratum"].map(strata["length_mm"]))
 
-    manifest = {
-        "tool": "calib",
-        "method": "hierarchical",
-        "reference": reference,
-        "reference_effort_unit": lc.cells.effort_unit.get(reference, ""),
-        "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
-                   if p is not None and Path(p).exists()},
-        "model": {"variant": "length", **spec.to_dict()},
-        "settings": settings,
-        "status_rules": asdict(rules),
-        "divergences": divergences,
-        "cells": dict(lc.report),
-        "gears": lc.cells.gears,
-        "species": lc.species,
-        "species_groups": groups_map,
-        "lengths": {
-            "bin_mm": lc.bin_mm,
-            "class_rule": "class lower bound = floor(length_mm / bin_mm) * bin_mm; factors.csv length_mm is "
-                          "the lower bound",
-            "input_resolution_mm": lc.input_resolution,
-            "min_class_fish": int(min_class_fish),
-            "calibrated_range_mm": lc.species_range,
-            "classes_mm": lc.classes,
-            "no_lengths_haul_species": lc.report["no_lengths_haul_species"],
-            "no_lengths_fish": lc.report["no_lengths_fish"],
-            "fish_outside_range": lc.report["fish_outside_range"],
-            "species_without_range": lc.report["species_without_range"],
-        },
-        "versions": software_versions(),
-    }
-    manifest["domain"] = calibration_domain(tables.hauls)
-    manifest["timestamp"] = utc_timestamp()
-    manifest["factor_set_id"] = factor_set_id(manifest, table)
-    idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
     split = split_by_length(idata, lc, interval=interval, seed=seed)
-    return FactorSet(table=table, checks=checks, idata=idata, manifest=manifest,
-                     extra_tables={"length_split": split})
+    return assemble_factor_set(
+        tables, table, checks, idata, method="hierarchical", reference=reference,
+        effort_unit=lc.cells.effort_unit, model={"variant": "length", **spec.to_dict()}, settings=settings,
+        rules=rules, divergences=divergences, cells_report=lc.report, gears=lc.cells.gears, species=lc.species,
+        species_groups=groups_map, extra={
+            "lengths": {
+                "bin_mm": lc.bin_mm,
+                "class_rule": "class lower bound = floor(length_mm / bin_mm) * bin_mm; factors.csv length_mm is "
+                              "the lower bound",
+                "input_resolution_mm": lc.input_resolution,
+                "min_class_fish": int(min_class_fish),
+                "calibrated_range_mm": lc.species_range,
+                "classes_mm": lc.classes,
+                "no_lengths_haul_species": lc.report["no_lengths_haul_species"],
+                "no_lengths_fish": lc.report["no_lengths_fish"],
+                "fish_outside_range": lc.report["fish_outside_range"],
+                "species_without_range": lc.report["species_without_range"],
+            },
+        }, extra_tables={"length_split": split})
 
 
 def split_by_length(idata, lc, *, interval: float = 0.9, n_draws: int = 200, seed: int = 0):

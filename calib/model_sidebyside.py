@@ -450,13 +450,9 @@ def fit_side_by_side(
     site-periods where the gear fished beside another gear and the species' total was > 0.
     Raises ``InputError`` listing every problem (:func:`calib.tables.side_by_side_problems`).
     """
-    from pathlib import Path
-
     from calib import diagnostics
-    from calib.convert import calibration_domain
     from calib.errors import InputError, Problem
-    from calib.factors import (FactorSet, factor_set_id, file_sha256, software_versions, summarise_theta_draws,
-                               utc_timestamp)
+    from calib.factors import assemble_factor_set, summarise_theta_draws
     from calib.fitting import _factor_table, _read_species_groups
     from calib.site_periods import PERIOD_COLUMN, build_site_periods, site_period_keys
     from calib.tables import complete_zeros, side_by_side_problems
@@ -489,32 +485,15 @@ def fit_side_by_side(
     summary = summarise_theta_draws(idata.posterior["theta"], interval)
     table = _factor_table(data.cells, summary, diag, divergences, rules, interval)
 
-    manifest = {
-        "tool": "calib",
-        "method": "hierarchical",
-        "design": "side-by-side",
-        "reference": reference,
-        "reference_effort_unit": data.effort_unit.get(reference, ""),
-        "inputs": {role: {"path": str(p), "sha256": file_sha256(p)} for role, p in tables.files.items()
-                   if p is not None and Path(p).exists()},
-        "model": spec.to_dict(),
-        "settings": settings,
-        "status_rules": asdict(rules),
-        "divergences": divergences,
-        "cells": dict(data.report),
-        "posterior_predictive_check": ("gear shares within site-periods fished by two or more gears "
-                                       "(Pearson chi-square, replicate hauls from the fitted model)"),
-        "gears": data.gears,
-        "species": data.species,
-        "species_groups": groups_map,
-        "versions": software_versions(),
-        # What the shared site-periods covered (months, covariates), so convert can flag records
-        # outside it: the site-period plays the calibration group's part; 'period' is no covariate.
-        "domain": calibration_domain(
-            tables.hauls.assign(pair_id=site_period_keys(tables.hauls, data.period_by))
-            .drop(columns=[PERIOD_COLUMN], errors="ignore")),
-        "timestamp": utc_timestamp(),
-    }
-    manifest["factor_set_id"] = factor_set_id(manifest, table)
-    idata.posterior.attrs["factor_set_id"] = manifest["factor_set_id"]
-    return FactorSet(table=table, checks=diag.copy(), idata=idata, manifest=manifest)
+    # The shared site-periods play the calibration groups' part in the domain convert flags
+    # records against; 'period' is no covariate.
+    domain_hauls = (tables.hauls.assign(pair_id=site_period_keys(tables.hauls, data.period_by))
+                    .drop(columns=[PERIOD_COLUMN], errors="ignore"))
+    return assemble_factor_set(
+        tables, table, diag.copy(), idata, method="hierarchical", reference=reference,
+        effort_unit=data.effort_unit, model=spec.to_dict(), settings=settings, rules=rules,
+        divergences=divergences, cells_report=data.report, gears=data.gears, species=data.species,
+        species_groups=groups_map, domain_hauls=domain_hauls, extra={
+            "design": "side-by-side",
+            "posterior_predictive_check": ("gear shares within site-periods fished by two or more gears "
+                                           "(Pearson chi-square, replicate hauls from the fitted model)")})

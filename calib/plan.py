@@ -67,6 +67,7 @@ from scipy.stats import norm
 
 from calib.errors import InputError, Problem, ProblemList
 from calib.model import Priors
+from calib.series import _positive_int  # the argparse type the commands share
 
 DEFAULT_KAPPA = math.exp(Priors().log_kappa_loc_mean)  # 3: the model's prior median of kappa
 DEFAULT_DENSITY_SPREAD = 1.0  # sd of log density between pairs (see docs/planning.md)
@@ -1043,16 +1044,6 @@ Patchiness (kappa; smaller = patchier catches): from --factors when given, else
 Writes OUT/plan.csv, curve.csv, plan_curves.png, plan.md (plain language, design
 advice, cautions), full_fit_check.csv and manifest.json.
 """
-
-
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        value = 0
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"must be a positive whole number, not {text!r}")
-    return value
 
 
 def _max_groups(text: str) -> int:

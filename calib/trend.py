@@ -466,7 +466,7 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
         table[c] = table[c].astype("Int64")
     draws_frame = (pd.concat(draw_frames, ignore_index=True) if draw_frames
                    else pd.DataFrame(columns=DRAW_COLUMNS))
-    series_table = _trend_series(sd, table, in_window, interval)
+    series_table = _trend_series(sd, (value, raw, est, raw_est), table, in_window, interval)
 
     notes = []
     hauls = survey_hauls(records)
@@ -515,12 +515,12 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
                        gear_mix=mix, source_series=src_series, agreement=agreement)
 
 
-def _trend_series(sd, table: pd.DataFrame, in_window: np.ndarray, interval: float) -> pd.DataFrame:
+def _trend_series(sd, cubes: tuple, table: pd.DataFrame, in_window: np.ndarray, interval: float) -> pd.DataFrame:
     """The combined annual index behind each species' trend, both series with intervals, and the
-    fitted log-linear curves over the years the slope used (trend_series.csv)."""
+    fitted log-linear curves over the years the slope used (trend_series.csv). ``cubes``: the
+    (value, raw, estimate, raw_estimate) cubes of ``sd`` the trend already built."""
     years = np.asarray(sd.years)
-    value, raw = sd.cube("value"), sd.cube("raw")
-    est, raw_est = sd.cube("estimate"), sd.cube("raw_estimate")
+    value, raw, est, raw_est = cubes
     lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
     frames = []
     slopes = table.set_index("species")
@@ -673,37 +673,40 @@ def source_agreement(source_draws: dict, *, year_from=None, year_to=None, interv
     """
     lo_q, hi_q = (1 - interval) / 2, 1 - (1 - interval) / 2
     labels = sorted(source_draws)
+    # Per source, once: species -> {year: (estimate, draws)} in the window, and the strata sampled.
+    yearly, strata = {}, {}
+    for lab, sd in source_draws.items():
+        years = np.asarray(sd.years)
+        window = np.ones(len(years), dtype=bool)
+        if year_from is not None:
+            window &= years >= year_from
+        if year_to is not None:
+            window &= years <= year_to
+        est, val = sd.cube("estimate"), sd.cube("value")
+        for i, sp in enumerate(sd.species):
+            keep = window & np.isfinite(est[i])
+            yearly[lab, str(sp)] = dict(zip(years[keep].tolist(), zip(est[i, keep], val[i, keep])))
+        per_stratum = sd.table[sd.table["stratum"] != ALL]
+        strata.update({(lab, str(sp)): set(g.astype(str)) for sp, g in
+                       per_stratum.groupby(per_stratum["species"].astype(str))["stratum"]})
     rows = []
     species = sorted({str(s) for sd in source_draws.values() for s in sd.species})
     for sp in species:
-        have = [lab for lab in labels if sp in source_draws[lab].species]
+        have = [lab for lab in labels if (lab, sp) in yearly]
         for a_i, a in enumerate(have):
             for b in have[a_i + 1:]:
-                rows.append(_agreement_row(sp, a, b, source_draws[a], source_draws[b], year_from, year_to,
+                rows.append(_agreement_row(sp, a, b, yearly[a, sp], yearly[b, sp],
+                                           strata.get((a, sp), set()) & strata.get((b, sp), set()),
                                            interval, lo_q, hi_q))
     return pd.DataFrame(rows, columns=AGREEMENT_COLUMNS)
 
 
-def _agreement_row(sp, a, b, sd_a, sd_b, year_from, year_to, interval, lo_q, hi_q) -> dict:
+def _agreement_row(sp, a, b, ya: dict, yb: dict, shared_strata: set, interval, lo_q, hi_q) -> dict:
+    """One source_agreement row; ya, yb: year -> (estimate, draws) of the two sources' species."""
     row = {c: np.nan for c in AGREEMENT_COLUMNS}
-    row.update(species=sp, source=a, other_source=b, interval=interval, reason="", shared_strata="")
-
-    def yearly(sd):
-        i = sd.species.index(sp)
-        years = np.asarray(sd.years)
-        est, val = sd.cube("estimate")[i], sd.cube("value")[i]
-        keep = np.isfinite(est)
-        if year_from is not None:
-            keep &= years >= year_from
-        if year_to is not None:
-            keep &= years <= year_to
-        return dict(zip(years[keep].tolist(), zip(est[keep], val[keep])))
-
-    ya, yb = yearly(sd_a), yearly(sd_b)
+    row.update(species=sp, source=a, other_source=b, interval=interval, reason="",
+               shared_strata=";".join(sorted(shared_strata)))
     shared = np.array(sorted(set(ya) & set(yb)))
-    strata_of = lambda sd: {str(s) for s in sd.table.loc[(sd.table["species"].astype(str) == sp)  # noqa: E731
-                                                         & (sd.table["stratum"] != ALL), "stratum"]}
-    row["shared_strata"] = ";".join(sorted(strata_of(sd_a) & strata_of(sd_b)))
     row["n_years"] = len(shared)
     if len(shared) < MIN_SHARED_YEARS:
         row.update(agreement="not comparable",
@@ -715,8 +718,8 @@ def _agreement_row(sp, a, b, sd_a, sd_b, year_from, year_to, interval, lo_q, hi_
     val_a, val_b = np.array([ya[y][1] for y in shared]), np.array([yb[y][1] for y in shared])
     pa, _, _ = loglinear_slope(est_a[None, :], shared)
     pb, _, _ = loglinear_slope(est_b[None, :], shared)
-    da, sa, oka = loglinear_slope(val_a.T, shared)
-    db, sb, okb = loglinear_slope(val_b.T, shared)
+    da, _, oka = loglinear_slope(val_a.T, shared)
+    db, _, okb = loglinear_slope(val_b.T, shared)
     if not (np.isfinite(pa[0]) and np.isfinite(pb[0]) and oka.all() and okb.all()):
         row.update(agreement="not comparable",
                    reason="a series is all zero or has a catch only in its first or last shared year")
