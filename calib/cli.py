@@ -128,9 +128,16 @@ def build_parser() -> argparse.ArgumentParser:
                         "among the gears (Dirichlet-multinomial). lognormal: every tow carries the same "
                         "multiplicative noise whatever its gear; fitted to the counts themselves (slower)")
     p.add_argument("--compare", action="store_true",
-                   help="fit both patchiness forms to the same counts, say which the data support "
-                        "(leave-one-out cross-validation) and keep that one, unless --patchiness names one; "
-                        "writes OUT/comparison.csv and OUT/spread_check.csv")
+                   help="fit several forms of the model to the same observations, say which the data "
+                        "support (leave-one-out cross-validation) and keep that one. With --length-bin "
+                        "and/or --covariate: a factor constant in length, changing with length, and "
+                        "depending on the covariates, all scored on the measured fish per length class "
+                        "(or, with --covariate alone, on each group's catch); writes OUT/comparison.csv. "
+                        "Otherwise: the two patchiness forms, unless --patchiness names one; writes "
+                        "OUT/comparison.csv and OUT/spread_check.csv")
+    p.add_argument("--model", choices=["constant", "length", "covariate"], default=None,
+                   help="with --compare and --length-bin/--covariate: keep this form whatever the comparison "
+                        "says (the comparison is still written). constant: one factor per species and gear")
     p.add_argument("--species-recorded", metavar="FILE", default=None,
                    help="optional table (source, species, year_from, year_to): zeros are completed only "
                         "for species a source recorded")
@@ -267,7 +274,12 @@ def _cmd_fit(args) -> int:
         return _usage_error("--compare and --patchiness need --method hierarchical")
     if (args.compare or args.patchiness == "lognormal") and args.pooling != "partial":
         return _usage_error("--patchiness lognormal (and so --compare) is built with --pooling partial only")
-    if args.compare:
+    by_form = args.compare and (args.length_bin is not None or bool(args.covariate))
+    if by_form:
+        from calib.compare import compare_models
+
+        factor_set, comparison = compare_models(args.hauls, args.catches, model=args.model, **options)
+    elif args.compare:
         from calib.compare import compare_patchiness
 
         factor_set, comparison = compare_patchiness(args.hauls, args.catches, patchiness=args.patchiness, **options)
@@ -276,7 +288,14 @@ def _cmd_fit(args) -> int:
     factor_set.save(args.out)
     print(factor_set.summary())
     files = ["factors.csv", "checks.csv", "posterior.nc", "manifest.json"]
-    if args.compare:
+    if by_form:
+        print(f"\nWhich form of the factor? (PSIS-LOO on each {comparison.unit}; "
+              f"{factor_set.manifest['comparison']['how']})")
+        print(comparison.table.to_string(index=False, float_format=lambda v: f"{v:.2f}"))
+        print("\n" + comparison.verdict)
+        print(f"Kept: {factor_set.manifest['comparison']['kept']}.")
+        files += [f"{name}.csv" for name in factor_set.extra_tables]
+    elif args.compare:
         print("\nWhich patchiness? (PSIS-LOO on each cell's split given its total)")
         print(comparison.table.to_string(index=False, float_format=lambda v: f"{v:.2f}"))
         print("\nSpread of the split by group total (observed vs each form's 90% predictive band):")
@@ -342,12 +361,30 @@ def _check_settings(parser: argparse.ArgumentParser, args) -> None:
         if getattr(args, "design", "paired") != "paired":
             parser.error("--length-bin works with --design paired only (side-by-side length factors are not built)")
     if getattr(args, "covariate", None):
-        if getattr(args, "length_bin", None) is not None:
-            parser.error("--covariate and --length-bin cannot be combined yet; fit them separately")
+        if getattr(args, "length_bin", None) is not None and not getattr(args, "compare", False):
+            parser.error("--covariate and --length-bin cannot be fitted together yet: fit them separately, or "
+                         "add --compare to see which of the two forms the data support")
         if args.method != "hierarchical" or args.pooling != "partial":
             parser.error("--covariate works with --method hierarchical and --pooling partial only")
         if getattr(args, "design", "paired") != "paired":
             parser.error("--covariate works with --design paired only (side-by-side covariate factors are not built)")
+    if getattr(args, "model", None) is not None:
+        if not args.compare:
+            parser.error("--model picks one of the forms --compare fits; add --compare (without it, "
+                         "--length-bin or --covariate alone set the form)")
+        if args.model == "length" and args.length_bin is None:
+            parser.error("--model length needs --length-bin MM (and --lengths FILE)")
+        if args.model == "covariate" and not args.covariate:
+            parser.error("--model covariate needs --covariate NAME")
+        if args.length_bin is None and not args.covariate:
+            parser.error("--model applies to the comparison of --length-bin / --covariate forms; for the "
+                         "patchiness comparison use --patchiness to keep one")
+    if getattr(args, "compare", False) and (args.length_bin is not None or args.covariate) and args.patchiness:
+        parser.error("--compare with --length-bin/--covariate compares factor forms under the default "
+                     "patchiness; compare patchiness forms in a separate run (--compare alone)")
+    if getattr(args, "design", "paired") == "side-by-side" and (getattr(args, "compare", False)
+                                                                or getattr(args, "patchiness", None) == "lognormal"):
+        parser.error("--compare and --patchiness lognormal work with --design paired only")
     for name in ("draws", "tune", "chains", "bootstrap_reps", "min_groups", "length_min_fish"):
         value = getattr(args, name, None)
         if value is not None and value < (0 if name == "tune" else 1):

@@ -17,7 +17,7 @@ p(split_i | total_i, other cells), the same predictive quantity (docs/methods.md
 :func:`spread_check` is the posterior predictive check of how the spread of the split changes
 with the group total, where the two patchiness forms predict different shapes.
 
-Public: :class:`Comparison`, :func:`pointwise_split`, :func:`compare_variants`,
+Public: :class:`Comparison`, :func:`pointwise_split`, :func:`compare_variants`, :func:`compare_models`,
 :func:`spread_check`, :func:`compare_patchiness`.
 """
 
@@ -329,3 +329,143 @@ def spread_sentence(spread: pd.DataFrame, names: list[str]) -> str:
         parts.append(f"'{name}' {int(inside)} of {len(spread)}")
     return ("Spread of the split by group total, bins where the predicted 90% band holds the observed spread: "
             + ", ".join(parts) + " (spread_check.csv).")
+
+
+# ---------------------------------------------------------------------------
+# calib fit --compare with --length-bin / --covariate: constant, length, covariate
+# ---------------------------------------------------------------------------
+
+MODEL_VARIANTS = ("constant", "length", "covariate")
+
+
+def species_view(lc):
+    """The length-class cells of :class:`calib.cells.LengthCells` with theta per species only.
+
+    Same cells (group x species x length class of measured fish, same counts, weights with the
+    measured-fraction offset, same order), but every class of a species points at the species:
+    a model fitted to this view has a factor that does not change with length. So the constant
+    model fitted here and the length model fitted to ``lc`` are scored on the same observations.
+    """
+    from dataclasses import replace
+
+    cells = lc.cells
+    stratum_species = np.asarray(lc.stratum_species, dtype=np.int64)
+    return replace(cells, species=list(lc.species), cell_species=stratum_species[np.asarray(cells.cell_species)],
+                   species_pool=np.asarray(lc.species_pool, dtype=np.int64))
+
+
+def covariates_on(view, cc):
+    """:class:`calib.cells.CovariateCells` for other cells of the same calibration groups (e.g.
+    :func:`species_view`): each cell takes its group's covariate values from ``cc`` (the group
+    cells' covariates), with the same levels, baseline, centring and scale."""
+    from dataclasses import replace
+
+    pair_ids = np.asarray(view.groups, dtype=object)[np.asarray(view.cell_group)]
+    row = {str(p): i for i, p in enumerate(cc.group_values["pair_id"].astype(str))}
+    missing = sorted({str(p) for p in pair_ids} - set(row))
+    if missing:
+        raise ValueError(f"groups {missing[:5]} have length-class cells but no covariate values")
+    at = np.array([row[str(p)] for p in pair_ids], dtype=np.int64)
+    cell_level = np.zeros((len(at), len(cc.categorical)), dtype=np.int64)
+    for k, name in enumerate(cc.categorical):
+        index = {lv: i for i, lv in enumerate(cc.levels[name])}
+        cell_level[:, k] = np.array([index[str(v)] for v in cc.group_values[name].to_numpy()[at]], dtype=np.int64)
+    cell_value = np.zeros((len(at), len(cc.numeric)))
+    for k, name in enumerate(cc.numeric):
+        cell_value[:, k] = cc.group_values[name].to_numpy(dtype=float)[at]
+    return replace(cc, cells=view, cell_level=cell_level, cell_value=cell_value)
+
+
+def _sample_split(pm_model, *, draws, tune, chains, seed, progressbar):
+    """Sample a model only for its pointwise split log-likelihood (no prior draws)."""
+    from calib import model as model_mod
+
+    idata = model_mod.sample(pm_model, draws=draws, tune=tune, chains=chains, seed=seed, progressbar=progressbar,
+                             target_accept=0.9, prior_draws=0)
+    return idata.log_likelihood["split"], int(idata.sample_stats["diverging"].sum())
+
+
+def compare_models(hauls, catches=None, *, reference: str, length_bin: float | None = None,
+                   covariates: list[str] | None = None, model: str | None = None, **fit_kwargs):
+    """Fit the constant, length-dependent and covariate variants the options allow and compare them.
+
+    Arguments as :func:`calib.fitting.fit` (hierarchical method, partial pooling). With
+    ``length_bin`` every variant is scored on the same observations: the split of the measured fish
+    of each group x species x length class (the length model's cells), the constant model and (with
+    ``covariates``) the covariate model being fitted to those cells with a factor that does not
+    change with length (:func:`species_view`). Without ``length_bin`` the constant and covariate
+    variants are scored on the split of each group x species total.
+
+    The variant kept is the one PSIS-LOO clearly prefers (else 'constant', the simpler model), or
+    ``model`` when given. The length model kept is the one compared; a kept constant or covariate
+    variant is refitted to all counted fish (the ordinary ``calib fit`` or ``calib fit --covariate``),
+    as the comparison only says which form the factor takes.
+
+    Returns (FactorSet of the kept variant, with ``comparison.csv`` as an extra table and the
+    comparison in its manifest; Comparison).
+    """
+    from calib.fitting import _as_tables, fit, prepare_counts
+
+    if length_bin is None and not covariates:
+        raise ValueError("comparing model variants needs length_bin or covariates (else compare patchiness)")
+    offered = ["constant"] + (["length"] if length_bin is not None else []) + (["covariate"] if covariates else [])
+    if model is not None and model not in offered:
+        raise ValueError(f"model {model!r} is not among the variants fitted ({', '.join(offered)}); "
+                         + ("give --length-bin MM to fit the length variant" if model == "length" else
+                            "give --covariate NAME to fit the covariate variant" if model == "covariate" else
+                            f"choose one of {MODEL_VARIANTS}"))
+    tables = _as_tables(hauls, catches, fit_kwargs.pop("lengths", None), fit_kwargs.pop("species_recorded", None),
+                        fit_kwargs.pop("species_names", None))
+    fit_kwargs.pop("patchiness", None)
+    sampling = {k: fit_kwargs[k] for k in ("draws", "tune", "chains", "seed", "progressbar") if k in fit_kwargs}
+    overdispersion = fit_kwargs.get("overdispersion", "dirichlet-multinomial")
+    fitted: dict = {}
+    lls: dict = {}
+    divergences: dict = {}
+
+    def full_fit(variant):
+        if variant not in fitted:
+            fitted[variant] = fit(tables, reference=reference, length_bin=length_bin if variant == "length" else None,
+                                  covariates=list(covariates) if variant == "covariate" else None, **fit_kwargs)
+        return fitted[variant]
+
+    if length_bin is not None:
+        from calib import covariate_model as cm
+        from calib import model as model_mod
+        from calib.cells import build_covariate_cells
+
+        length_set = full_fit("length")
+        lc = length_set.cells
+        lls["length"] = length_set.idata.log_likelihood["split"]
+        view = species_view(lc)
+        lls["constant"], divergences["constant"] = _sample_split(
+            model_mod.build_model(view, model_mod.ModelSpec(overdispersion=overdispersion)), **sampling)
+        if covariates:
+            counts, groups_map = prepare_counts(tables, reference, fit_kwargs.get("species_groups"))
+            cc = build_covariate_cells(tables.hauls, counts, reference, list(covariates), species_groups=groups_map,
+                                       hauls_file=str(tables.files.get("hauls") or "hauls"))
+            lls["covariate"], divergences["covariate"] = _sample_split(
+                cm.build_covariate_model(covariates_on(view, cc), cm.CovariateModelSpec(overdispersion=overdispersion)),
+                **sampling)
+        unit = "length-class split"
+        note = ("scored on the split of the measured fish of each group x species x length class; the constant and "
+                "covariate variants fitted to those cells with a factor that does not change with length; a kept "
+                "constant or covariate variant is refitted to all counted fish")
+    else:
+        for variant in ("constant", "covariate"):
+            lls[variant] = pointwise_split(full_fit(variant))
+        if not np.array_equal(np.asarray(fitted["constant"].cells.counts),
+                              np.asarray(fitted["covariate"].cells.cells.counts)):
+            raise RuntimeError("the constant and covariate fits are not on the same cells")  # a bug, not input
+        unit = "cell split"
+        note = "scored on the split of each group x species total among the gears"
+    comparison = compare_variants({v: lls[v] for v in offered}, default="constant", unit=unit)
+    kept = model or comparison.preferred
+    if model is not None and model != comparison.preferred:
+        comparison.verdict += f" Kept '{model}' as asked (--model)."
+    chosen = full_fit(kept)
+    chosen.manifest["comparison"] = {**comparison.manifest_entry(), "kept": kept, "variants": offered,
+                                     "how": note, "files": ["comparison.csv"],
+                                     "divergences_of_comparison_fits": divergences}
+    chosen.extra_tables = {**chosen.extra_tables, "comparison": comparison.table}
+    return chosen, comparison

@@ -180,7 +180,7 @@ def fit_with_covariates(tables, counts, *, reference: str, covariates, groups_ma
             "covariates": cov_info,
             "covariate_rows": ("one factors.csv row per species x gear x level of each covariate, the other "
                                "covariates at their baseline level and calibration mean")},
-        extra_tables={"covariate_effects": covariate_summary(idata, cc, interval)})
+        extra_tables={"covariate_effects": covariate_summary(idata, cc, interval)}, cells=cc)
 
 
 def is_covariate_factor_set(factor_set) -> bool:

@@ -44,6 +44,31 @@ def _read_species_groups(path) -> dict[str, str] | None:
     return dict(zip(frame["species"].astype(str).str.strip(), frame["group"].astype(str).str.strip()))
 
 
+def prepare_counts(tables, reference: str, species_groups=None):
+    """Validate the tables for fitting and return (zero-completed counts, species -> pool group map).
+
+    species_groups : None, a dict species -> group or a path to a (species, group) table; every
+        species in the catches must be listed. Raises ``InputError`` naming file, row and column.
+    """
+    from calib.tables import complete_zeros, fit_problems
+
+    problems = fit_problems(tables, reference)
+    if problems:
+        raise InputError(problems)
+    groups_map = species_groups if isinstance(species_groups, dict) or species_groups is None else _read_species_groups(species_groups)
+    counts = complete_zeros(tables)
+    if groups_map is not None:
+        unlisted = sorted(set(counts["species"]) - set(groups_map))
+        if unlisted:
+            raise InputError([
+                Problem(str(species_groups) if not isinstance(species_groups, dict) else "species_groups",
+                        None, "species", f"species '{s}' is in the catches but not in the species groups table",
+                        "add a row for it (species, group) so it is pooled with the right group")
+                for s in unlisted
+            ])
+    return counts, groups_map
+
+
 def fit(
     hauls,
     catches=None,
@@ -111,7 +136,6 @@ def fit(
     FactorSet
     """
     from calib import diagnostics
-    from calib.tables import complete_zeros, fit_problems
 
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, not {method!r}")
@@ -135,21 +159,7 @@ def fit(
             chains=chains, seed=seed, interval=interval, rules=rules, progressbar=progressbar)
     if design not in DESIGNS:
         raise ValueError(f"design must be one of {DESIGNS}, not {design!r}")
-    problems = fit_problems(tables, reference)
-    if problems:
-        raise InputError(problems)
-    groups_map = species_groups if isinstance(species_groups, dict) or species_groups is None else _read_species_groups(species_groups)
-
-    counts = complete_zeros(tables)
-    if groups_map is not None:
-        unlisted = sorted(set(counts["species"]) - set(groups_map))
-        if unlisted:
-            raise InputError([
-                Problem(str(species_groups) if not isinstance(species_groups, dict) else "species_groups",
-                        None, "species", f"species '{s}' is in the catches but not in the species groups table",
-                        "add a row for it (species, group) so it is pooled with the right group")
-                for s in unlisted
-            ])
+    counts, groups_map = prepare_counts(tables, reference, species_groups)
     if covariates and length_bin is not None:
         raise ValueError("--covariate and --length-bin cannot be combined yet; fit them separately")
     if length_bin is not None:

@@ -140,7 +140,7 @@ def fit_by_length(tables, counts, *, reference: str, length_bin: float, groups_m
                 "fish_outside_range": lc.report["fish_outside_range"],
                 "species_without_range": lc.report["species_without_range"],
             },
-        }, extra_tables={"length_split": split})
+        }, extra_tables={"length_split": split}, cells=lc)
 
 
 def split_by_length(idata, lc, *, interval: float = 0.9, n_draws: int = 200, seed: int = 0):
