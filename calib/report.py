@@ -476,6 +476,10 @@ def _section_checks(r: ReportInputs) -> str:
         out.append(_p(f"From {r.comparison_file} in the factor set folder: PSIS-LOO on the same observations "
                       "(Vehtari, Gelman & Gabry 2017)."))
         out.append(_table(comp, {c: c for c in comp.columns}, numeric=numeric))
+        entry = (r.manifest or {}).get("comparison") or {}
+        if entry.get("verdict"):
+            how = f" Scored {entry['how']}." if entry.get("how") else ""
+            out.append(_p(f"{entry['verdict']} Kept: {entry.get('kept', entry.get('preferred', ''))}.{how}"))
     else:
         out.append(_p("No model comparison was run for this factor set (no "
                       + " / ".join(COMPARISON_FILES) + " in its folder)."))

@@ -199,6 +199,8 @@ def test_report_escapes_file_text_and_shows_length_and_comparison(demo_run, tmp_
                   "dse": [0.0, 2.1]}).to_csv(fdir / "comparison.csv", index=False)
     manifest = json.loads((fdir / "manifest.json").read_text())
     del manifest["inputs"]  # a factor set that names no input tables: the design is what the fit recorded
+    manifest["comparison"] = {"verdict": "The data support 'length' <b>.", "kept": "length",
+                              "how": "on the length-class cells"}
     (fdir / "manifest.json").write_text(json.dumps(manifest))
     out = write_report(tmp_path / "r.html", fdir)
     text = out.read_text()
@@ -206,6 +208,7 @@ def test_report_escapes_file_text_and_shows_length_and_comparison(demo_run, tmp_
     assert evil not in text and "&lt;script&gt;alert(&#x27;x&#x27;)&lt;/script&gt; &amp; co" in text
     assert "<script" not in text
     assert "lognormal" in text and "-1,240" in text and "No model comparison was run" not in text
+    assert "The data support &#x27;length&#x27; &lt;b&gt;. Kept: length. Scored on the length-class cells." in text
     assert "Not fitted" not in text and "factors by length class" in text
     assert "No series given" in text and "No trend attribution given" in text
     assert [h.strip() for h in parse(text).h2] == [h for _, h in SECTIONS]
