@@ -152,6 +152,12 @@ def _verdict(table: pd.DataFrame, default: str, unit: str) -> tuple[str, str]:
             preferred = default
             lines.append(f"'{best['variant']}' predicts held-out {unit}s slightly better than '{default}' "
                          f"(difference {gap:.1f}, standard error {se:.1f}), not clearly; keep '{default}'.")
+    # The variants the first sentence did not name (three or more variants).
+    named = {default, str(best["variant"])} | ({str(table.iloc[1]["variant"])} if best["variant"] == default else set())
+    others = table[~table["variant"].isin(named)]
+    for r in others.itertuples():
+        lines.append(f"'{r.variant}' predicts {r.elpd_diff:.1f} log-units worse than '{best['variant']}' "
+                     f"(standard error {r.dse:.1f}).")
     bad = table[table["n_high_k"] > 0]
     for r in bad.itertuples():
         lines.append(f"Warning: for '{r.variant}', {r.n_high_k} of {r.n_obs} {unit}s have Pareto k above "

@@ -142,3 +142,24 @@ def test_compare_usage_errors(tmp_path, capsys, extra, message):
     assert exc.value.code == 2
     assert message in capsys.readouterr().err
     assert not (tmp_path / "out").exists()
+
+
+def test_verdict_names_every_variant_and_keeps_the_default_unless_clearly_beaten():
+    # Synthetic pointwise log-likelihoods: 'length' better than 'constant' by 0.5 per observation
+    # (25 over 50), 'covariate' by 0.1 (5): the verdict keeps 'length' and names all three.
+    import xarray as xr
+
+    from calib.compare import compare_variants
+
+    rng = np.random.default_rng(0)
+    base = rng.normal(-2.0, 0.1, size=(2, 200, 50))
+
+    def ll(shift, noise=0.01):
+        return xr.DataArray(base + shift + rng.normal(0, noise, size=base.shape), dims=("chain", "draw", "obs"))
+
+    c = compare_variants({"constant": ll(0.0), "length": ll(0.5), "covariate": ll(0.1)}, default="constant")
+    assert c.preferred == "length"
+    assert "'covariate' predicts" in c.verdict and "'constant'" in c.verdict
+    # a gain of 0.05 per observation (2.5 in all) is below the 4-log-unit rule: keep the default
+    c = compare_variants({"constant": ll(0.0), "length": ll(0.05)}, default="constant")
+    assert c.preferred == "constant" and "keep 'constant'" in c.verdict
