@@ -329,6 +329,7 @@ class Conversion:
     length_factor_draws: pd.DataFrame | None = None
     covariate_factor_draws: pd.DataFrame | None = None
     record_lengths: pd.DataFrame | None = None
+    covariate_term_draws: pd.DataFrame | None = None  # see calib.covariate_convert.CovariateConversion.terms
     _records: pd.DataFrame | None = field(default=None, init=False, repr=False)
 
     @property
@@ -444,6 +445,8 @@ class Conversion:
                 self.record_lengths.to_csv(tmp / "record_lengths.csv", index=False, float_format="%.6g")
             if self.covariate_factor_draws is not None:
                 self.covariate_factor_draws.to_parquet(tmp / "covariate_factor_draws.parquet", index=False)
+            if self.covariate_term_draws is not None:
+                self.covariate_term_draws.to_parquet(tmp / "covariate_term_draws.parquet", index=False)
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
 
@@ -987,7 +990,8 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         manifest["covariates"] = fs.manifest.get("covariates")
     return Conversion(rejected=rej, factor_draws=factor_draws, factors=factors_used, manifest=manifest,
                       notes=notes, store=store, length_factor_draws=length_draws, record_lengths=record_lengths,
-                      covariate_factor_draws=cconv.draws if cconv is not None else None)
+                      covariate_factor_draws=cconv.draws if cconv is not None else None,
+                      covariate_term_draws=cconv.terms if cconv is not None else None)
 
 
 def _text_codes(values: pd.Series) -> tuple[np.ndarray, list[str]]:
@@ -1155,7 +1159,9 @@ def run_convert_command(args) -> int:
     print(conversion.summary())
     written = ["records.parquet"] + (["records.csv"] if conversion.n_records <= CSV_MAX_ROWS else []) + [
         "rejected.csv", "factor_draws.parquet", "factors_used.csv", "manifest.json"] + (
-        ["length_factor_draws.parquet", "record_lengths.csv"] if conversion.length_factor_draws is not None else [])
+        ["length_factor_draws.parquet", "record_lengths.csv"] if conversion.length_factor_draws is not None else []) + (
+        ["covariate_factor_draws.parquet", "covariate_term_draws.parquet"]
+        if conversion.covariate_term_draws is not None else [])
     print(f"\nrows in {conversion.n_in} = converted {conversion.n_converted} + rejected {conversion.n_rejected}")
     print(f"Wrote {out}/: {', '.join(written)}")
     return 0
