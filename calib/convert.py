@@ -360,13 +360,10 @@ class Conversion:
         ``count / hauls.effort[haul]``; its factor_species and factor_gear are its species and
         its haul's gear.
         """
-        if self.manifest["counts"].get("covariate_converted"):
-            raise ValueError("this conversion holds records converted with their own covariate values: they have "
-                             "no single species x gear factor draw; series and trend do not handle them yet")
-        if self.manifest["counts"].get("length_converted"):
-            raise ValueError("this conversion holds records converted by length class: each has its own mix of "
-                             "class factors, so they have no single species x gear factor draw; series and trend "
-                             "do not handle length-converted records yet")
+        if self.manifest["counts"].get("covariate_converted") or self.manifest["counts"].get("length_converted"):
+            raise ValueError("this conversion holds records converted by length class or with their own covariate "
+                             "values: they have no single species x gear factor; use record_columns and "
+                             "calib.series.RecordFactors.from_conversion (series_draws does so itself)")
         st = self.store
         return {"hauls": st.hauls, "haul": st.haul, "species": st.species_code, "count": st.count,
                 "factor": st.factor, "species_labels": list(st.species), "factor_status": list(st.factor_status),

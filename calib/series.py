@@ -1480,6 +1480,12 @@ posterior draw of the factors, the hauls are resampled (bootstrap within
 stratum and year) and converted with that draw. The raw, unconverted series
 is given beside it (raw_estimate, raw_lower, raw_upper) on the same resamples.
 
+Records converted by length class (convert --lengths) or with their own
+covariate values (factors fitted with --covariate) each have their own factor:
+it is rebuilt draw by draw from the files convert wrote beside the records
+(length_factor_draws.parquet and record_lengths.csv, or
+covariate_term_draws.parquet), so keep them in the conversion folder.
+
 Writes OUT/series.csv, OUT/series_draws.parquet (the paired draws) and
 OUT/manifest.json."""
 

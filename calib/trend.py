@@ -768,7 +768,8 @@ units, from the same paired draws as `calib series`). The harmonized interval
 carries conversion error, sampling error and the year-to-year scatter around
 the trend; the artifact (raw minus harmonized slope) is computed draw by draw
 on the paired series. Changes are percent over the period:
-raw change = harmonized change x artifact.
+raw change = harmonized change x artifact. Records converted by length class
+or with their own covariate values are taken as `calib series` takes them.
 
 """ + textwrap.fill("Verdict rule: " + VERDICT_RULE, 78) + """
 
