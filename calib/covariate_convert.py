@@ -271,27 +271,47 @@ class CovariateRecordFactors:
         if missing:
             raise InputError([Problem(self.where, None, c, "covariate column missing from the converted records",
                                       "convert again: records keep every hauls column", False) for c in missing])
-        sp = records["species"].astype(str).to_numpy()[rows]
-        ge = records[gear_column].astype(str).to_numpy()[rows]
         n = len(rows)
 
-        def lookup(term, cov, level):
-            return self.rows.get_indexer(pd.MultiIndex.from_arrays(
-                [sp, ge, np.full(n, term), np.full(n, cov), np.asarray(level, dtype=object)]))
+        def column(name):  # codes of the bound rows into a few labels (no per-record text)
+            codes, labels = pd.factorize(records[name].iloc[rows] if len(rows) < len(records) else records[name])
+            return codes, np.asarray([str(v).strip() for v in labels], dtype=object)
+
+        sp, ge = column("species"), column(gear_column)
+
+        def lookup(term, cov, level=None):
+            """Row of the term for each bound record (-1: none), looked up once per distinct key."""
+            parts = [sp, ge] + ([level] if level is not None else [])
+            radix = [len(lab) + 1 for _, lab in parts]
+            key = np.zeros(n, dtype=np.int64)
+            for (c, _), r in zip(parts, radix):  # one integer per combination (-1 -> 0: blank)
+                key *= r
+                key += c + 1
+            inv, ukey = pd.factorize(key)  # hash-based: no sort of the records
+            keys = np.zeros((len(ukey), len(parts)), dtype=np.int64)
+            rest = np.asarray(ukey, dtype=np.int64)
+            for k in range(len(parts) - 1, -1, -1):
+                keys[:, k] = rest % radix[k] - 1
+                rest = rest // radix[k]
+            labels = [lab[np.maximum(keys[:, k], 0)] for k, (_, lab) in enumerate(parts)]
+            lv = labels[2] if level is not None else np.full(len(keys), "", dtype=object)
+            found = self.rows.get_indexer(pd.MultiIndex.from_arrays(
+                [labels[0], labels[1], np.full(len(keys), term), np.full(len(keys), cov), lv]))
+            found[(keys < 0).any(axis=1)] = -1  # a blank value
+            return found[inv] if n else np.zeros(0, dtype=np.int64)
 
         has = np.ones(n, dtype=bool)
-        base = lookup("theta", "", np.full(n, "", dtype=object))
+        base = lookup("theta", "")
         has &= base >= 0
         offsets = []
         for c in self.cat:
-            col = records[c].astype("string").str.strip().fillna("").to_numpy(dtype=object)[rows]
-            r = lookup("offset", c, col)
+            r = lookup("offset", c, column(c))
             has &= r >= 0
             offsets.append(r)
         slopes = []
         for c in self.num:
             x = pd.to_numeric(records[c], errors="coerce").to_numpy(dtype=float)[rows] - float(self.info[c]["centre"])
-            r = lookup("slope", c, np.full(n, "", dtype=object))
+            r = lookup("slope", c)
             has &= (r >= 0) & np.isfinite(x)
             slopes.append((r, np.where(np.isfinite(x), x, 0.0)))
         M = np.ascontiguousarray(self.matrix[:, pick])

@@ -257,7 +257,7 @@ class RecordFactors:
 
     @property
     def columns(self) -> list[str]:
-        return ["haul_id"] + [c for p in self.parts for c in p.columns if c != "haul_id"]
+        return list(dict.fromkeys(c for p in self.parts for c in p.columns))
 
     @classmethod
     def from_directory(cls, d: Path, manifest: dict) -> "RecordFactors | None":
@@ -905,7 +905,9 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
                 "strata": [strata[h] for h in np.unique(u_st)] if has_strata else [],
                 "strata_without_area": no_area,
                 "units_exact": int(exact_u.sum()), "units_moment_matched": int((~exact_u).sum()),
-                "cells": int(C), "records": int(n), "effort_units": codes.effort_units}
+                "cells": int(C), "records": int(n), "effort_units": codes.effort_units,
+                "records_with_own_factor": int(rm_rec.sum()) if rm_rec is not None else 0,
+                "own_factor_kinds": [p.kind for p in rf.parts] if rf is not None and rm_rec is not None else []}
     return SeriesDraws(table=table, value=value, raw=raw, estimate=estimate, raw_estimate=np.asarray(raw_points),
                        draw=draw_numbers[pick], species=[species[i] for i in np.unique(u_sp)],
                        years=years[np.unique(u_yc)], settings=settings)
@@ -1424,6 +1426,10 @@ def series(converted, *, draws: int | None = None, seed: int = 0, interval: floa
     if counts.get("rejected"):
         notes.append(f"{counts['rejected']} records were rejected by convert and are in no series (see "
                      "rejected.csv); a gear's rejected hauls are missing from its strata and years")
+    if sd.settings["records_with_own_factor"]:
+        notes.append(f"{sd.settings['records_with_own_factor']} records converted "
+                     f"{' or '.join({'length': 'by length class', 'covariate': 'with their own covariate values'}[k] for k in sd.settings['own_factor_kinds'])}"
+                     ": each record's factor draws were rebuilt from the conversion's files, draw by draw")
     if sd.settings["strata_without_area"]:
         notes.append("strata without stratum_area: " + ", ".join(sd.settings["strata_without_area"])
                      + "; years with them are plain means over hauls (method haul_mean)")

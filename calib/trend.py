@@ -483,6 +483,9 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
     if counts.get("rejected"):
         notes.append(f"{counts['rejected']} records were rejected by convert and are in no series or trend "
                      "(see rejected.csv)")
+    if sd.settings.get("records_with_own_factor"):
+        notes.append(f"{sd.settings['records_with_own_factor']} records have their own factor (converted by length "
+                     "class or with their own covariate values), rebuilt draw by draw from the conversion's files")
     if len(sd.settings.get("effort_units", [])) > 1:
         notes.append("effort units differ between gears: the raw series mixes them, the harmonized series is in "
                      "reference-gear units")
