@@ -305,3 +305,13 @@ def test_series_and_trend_rebuild_each_records_covariate_factor(effect_fit, tmp_
     t = pd.read_csv(tr / "trend.csv")
     assert sorted(t["species"]) == sorted(records["species"].unique())
     assert "covariate_term_draws" in json.loads((tr / "manifest.json").read_text())["inputs"]
+    # a conversion folder without the term draws (written before they were stored) is refused
+    import shutil
+
+    from calib.errors import InputError
+    from calib.series import series
+
+    shutil.copytree(conv, tmp_path / "old")
+    (tmp_path / "old" / "covariate_term_draws.parquet").unlink()
+    with pytest.raises(InputError, match="convert again"):
+        series(tmp_path / "old")

@@ -284,3 +284,28 @@ def test_trend_command_runs_end_to_end_on_a_length_conversion(tmp_path, capsys):
     assert tr["verdict"] == "mostly method artifact"
     manifest = json.loads((tmp_path / "trend" / "manifest.json").read_text())
     assert "record_lengths" in manifest["inputs"] and "length_factor_draws" in manifest["inputs"]
+
+
+def test_missing_or_mismatched_files_are_clear_input_errors(by_length, tmp_path, capsys):
+    """Without record_lengths.csv the records' factors cannot be rebuilt: exit 1, the file named,
+    no output; class draws from other posterior samples than factor_draws.parquet are refused."""
+    import shutil
+
+    from calib.cli import main
+    from calib.errors import InputError
+
+    _, out = by_length
+    broken = tmp_path / "broken"
+    shutil.copytree(out, broken)
+    (broken / "record_lengths.csv").unlink()
+    assert main(["series", "--converted", str(broken), "--out", str(tmp_path / "s")]) == 1
+    said = capsys.readouterr()
+    assert "record_lengths.csv" in said.err + said.out
+    assert not (tmp_path / "s").exists()
+    other = tmp_path / "other"
+    shutil.copytree(out, other)
+    fd = pd.read_parquet(other / "length_factor_draws.parquet")
+    fd["posterior_draw"] = (fd["posterior_draw"] + 1) % 400  # the same draws numbered, other samples
+    fd.to_parquet(other / "length_factor_draws.parquet", index=False)
+    with pytest.raises(InputError, match="not the same posterior draws"):
+        series(other)
