@@ -67,6 +67,15 @@ what the joint resampling of one stratum x year's hauls implies.
   when the skewness is below 1e-3, and sums are kept >= 0. tests/test_series.py checks the
   quantiles against exact resampling above the threshold.
 
+Records with their own factor (converted by length class or with their own covariate values;
+:class:`RecordFactors`): record i's converted cpue for draw d is x_i m_i[d], m_i rebuilt from the
+conversion's files with draw d of the same posterior sample as every other factor. Exact
+resampling sums x_i m_i[d] over the same picks as the raw sum. Moment matching uses, per cell and
+draw, the moments of the non-zero x_i m_i[d] (a shifted gamma with the raw sum's K) and a normal
+correlated with the raw sum's by the correlation of x and x m[d] over the cell's hauls (the
+correlation of the two sums of the same picks; a Gaussian copula). Multipliers are built about
+2^20 values at a time; cost O(their non-zero records x draws) on top of the path above.
+
 Species are resampled independently (each species' series on its own); trend (issue 4) and
 any other consumer of paired draws should call :func:`series_draws` rather than re-implement
 the pairing.
@@ -772,8 +781,11 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
                         Sh[exr] = Sh_exact[exh_row[c0 + exr]]
             if mm.any():
                 hm = None
-                if P is not None:
-                    hm = _central_moments(nz_c[c0:c1, None], *P)
+                if P is not None:  # each draw's moments of the converted values, and their covariance with cpue
+                    with np.errstate(divide="ignore", invalid="ignore"):
+                        cov = np.where(nz_c[c0:c1, None] > 0, P[3] / nz_c[c0:c1, None], 0.0) - \
+                            mu_nz[c0:c1, None] * np.where(nz_c[c0:c1, None] > 0, P[0] / nz_c[c0:c1, None], 0.0)
+                    hm = (*_central_moments(nz_c[c0:c1, None], *P[:3]), cov)
                 _moment_matched_block(S, rng, unit_of_cell[c0:c1] - u0, ustart[u0:u1] - c0, mm, n_u[u0:u1],
                                       nz_c[c0:c1], mu_nz[c0:c1], var_nz[c0:c1], m3_nz[c0:c1],
                                       Sh=Sh if P is not None else None, rm=rc, harm=hm)
@@ -959,10 +971,10 @@ def _bind_record_factors(rf, records, codes, part_of_fk, pick, D, uncertainty, w
 
 
 def _power_sums(mult, cpue, order, cell, ptr, c0, c1, D, higher: bool):
-    """Sums over the non-zero records of cells c0..c1 of y[d] = cpue * m[d] (and of y^2, y^3 when
-    ``higher``), as (c1 - c0, D) arrays. ``order`` lists those records sorted by ``cell``; ``ptr``
+    """Sums over the non-zero records of cells c0..c1 of y[d] = cpue * m[d] (and of y^2, y^3 and
+    cpue * y when ``higher``), as (c1 - c0, D) arrays. ``order`` lists those records sorted by ``cell``; ``ptr``
     gives each cell's first position in it. Records are taken about 2^20 values at a time."""
-    P = [np.zeros((c1 - c0, D)) for _ in range(3 if higher else 1)]
+    P = [np.zeros((c1 - c0, D)) for _ in range(4 if higher else 1)]
     a, b = int(ptr[c0]), int(ptr[c1])
     step = max(1, (1 << 20) // D)
     for s0 in range(a, b, step):
@@ -970,9 +982,11 @@ def _power_sums(mult, cpue, order, cell, ptr, c0, c1, D, higher: bool):
         cl = cell[s0:min(s0 + step, b)] - c0
         st = np.flatnonzero(np.r_[True, cl[1:] != cl[:-1]])
         y = mult(idx)
-        y *= cpue[idx][:, None]
+        x = cpue[idx][:, None]
+        y *= x
         P[0][cl[st]] += np.add.reduceat(y, st, axis=0)
         if higher:
+            P[3][cl[st]] += np.add.reduceat(y * x, st, axis=0)
             y2 = y * y
             P[1][cl[st]] += np.add.reduceat(y2, st, axis=0)
             y2 *= y
@@ -983,8 +997,8 @@ def _power_sums(mult, cpue, order, cell, ptr, c0, c1, D, higher: bool):
 def _pearson3_sum(K, z, mu, sd, g):
     """Sum of K picks with mean mu, sd and skewness g per pick, as a shifted gamma (Pearson type
     III) driven by the standard normal z: the transformation of :func:`_moment_matched_block`,
-    with the exact gamma variate (shape below 2) taken as the gamma quantile of Phi(z), so the
-    same z gives raw and converted sums that move together (common random numbers). Arrays
+    with the exact gamma variate (shape below 2) taken as the gamma quantile of Phi(z), so
+    correlated normals give correlated raw and converted sums (a Gaussian copula). Arrays
     broadcast; values kept >= 0."""
     from scipy.special import gammaincinv, ndtr
 
@@ -1137,10 +1151,11 @@ def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean
 
     With ``Sh`` (converted sums, in place), the rows marked in ``rm`` hold records with their own
     multipliers: their converted sum of draw d is the same construction with that draw's moments
-    of the converted values cpue * m[d] (``harm``: mean, variance, third central moment, each
-    (rows, D)), driven by the same K and the same normal as the raw sum (:func:`_pearson3_sum`),
-    so raw and converted sums move together as sums of the same picks do. Other rows of ``Sh``
-    get the raw sums.
+    of the converted values y = cpue * m[d] (``harm``: mean, variance, third central moment and
+    covariance with cpue, each (rows, D)), with the same K as the raw sum and a normal correlated
+    with the raw sum's by rho = cov / (sd_x sd_y), the correlation of x and y over the cell's hauls,
+    which is also that of the two sums of the same K picks (a Gaussian copula; rho = 1 when every
+    record has the same multiplier). Other rows of ``Sh`` get the raw sums.
     """
     D = S.shape[1]
     rows = np.flatnonzero(mm_unit[unit_of_cell] & (nz_c > 0))
@@ -1215,11 +1230,15 @@ def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean
         r_own = rows[own]
         K_own = K[own].astype(float)
         out[own] = _pearson3_sum(K_own, z_own, mean[r_own][:, None], sd[own][:, None], skew[own][:, None])
-        hm, hv, h3 = (np.asarray(a)[r_own] for a in harm)
+        hm, hv, h3, hc = (np.asarray(a)[r_own] for a in harm)
         h_sd = np.sqrt(np.maximum(hv, 0.0))
         with np.errstate(divide="ignore", invalid="ignore"):
             h_skew = np.where(h_sd > 0, h3 / h_sd**3, 0.0)
-        Sh[r_own] = _pearson3_sum(K_own, z_own, hm, h_sd, h_skew)
+            sdx = sd[own][:, None]
+            rho = np.where((h_sd > 0) & (sdx > 0), hc / (sdx * h_sd), 1.0)
+        rho = np.clip(rho, -1.0, 1.0)
+        z_h = rho * z_own + np.sqrt(1.0 - rho * rho) * rng.standard_normal(z_own.shape)
+        Sh[r_own] = _pearson3_sum(K_own, z_h, hm, h_sd, h_skew)
     S[rows] = out
     if Sh is not None:
         if own is not None and (~own).any():
