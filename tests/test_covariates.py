@@ -308,8 +308,12 @@ def test_series_and_trend_rebuild_each_records_covariate_factor(effect_fit, tmp_
     # a conversion folder without the term draws (written before they were stored) is refused
     import shutil
 
+    from calib.convert import convert
     from calib.errors import InputError
     from calib.series import series
+
+    in_memory = convert(tmp / "factors", tmp_path / "survey_hauls.csv", tmp_path / "survey_catches.csv")
+    np.testing.assert_allclose(series(in_memory, seed=3).draws.value, series(conv, seed=3).draws.value, rtol=1e-9)
 
     shutil.copytree(conv, tmp_path / "old")
     (tmp_path / "old" / "covariate_term_draws.parquet").unlink()
