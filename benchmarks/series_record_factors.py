@@ -7,7 +7,10 @@ estimator twice on the same records:
     ordinary     every non-reference species x gear converted with one factor (species level)
     per record   the same gears converted with their own depth:
                  factor[d] = exp(-(theta_gs[d] + slope_g[d] * (depth - 3))), rebuilt draw by
-                 draw from term draws (calib.covariate_convert.CovariateRecordFactors)
+                 draw from term draws (calib.covariate_convert.CovariateRecordFactors);
+                 or, with --kind length, with their own mix of 3 length classes' factors
+                 (calib.length_convert.LengthRecordFactors; every non-zero record has raised
+                 counts in 1 to 3 classes, as record_lengths.csv holds them)
 
 and prints wall time and the process's peak resident memory after each (ru_maxrss). The
 per-record path adds O(non-zero records x draws) arithmetic, done about 2^20 values at a time.
@@ -46,6 +49,7 @@ def main(argv=None) -> int:
     ap.add_argument("--records", type=int, default=1_000_000)
     ap.add_argument("--draws", type=int, default=1000)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--kind", choices=["covariate", "length"], default="covariate")
     args = ap.parse_args(argv)
 
     from calib.covariate_convert import CovariateRecordFactors
@@ -59,6 +63,8 @@ def main(argv=None) -> int:
     depth = rng.uniform(0.5, 6.0, n_h).round(1)
     cat = pd.Categorical.from_codes
     rec = pd.DataFrame({
+        **({"haul_id": pd.Categorical.from_codes(np.repeat(np.arange(n_h), n_sp), np.arange(n_h).astype(str))}
+           if args.kind == "length" else {}),
         "species": cat(np.tile(np.arange(n_sp), n_h), SPECIES),
         "year": np.repeat(1995 + rng.integers(0, 30, n_h), n_sp),
         "gear": cat(np.repeat(gear, n_sp), GEARS),
@@ -82,8 +88,28 @@ def main(argv=None) -> int:
                                            "level": "", "draw": np.arange(D), "value": slope[g]}))
     fd_all = pd.concat(fd_rows, ignore_index=True)
     fd_ref = fd_all[fd_all["gear"] == GEARS[0]]
-    rf = RecordFactors([CovariateRecordFactors(pd.concat(term_rows, ignore_index=True),
-                                               {"depth_m": {"kind": "numeric", "centre": 3.0}})])
+    if args.kind == "covariate":
+        rf = RecordFactors([CovariateRecordFactors(pd.concat(term_rows, ignore_index=True),
+                                                   {"depth_m": {"kind": "numeric", "centre": 3.0}})])
+    else:
+        from calib.length_convert import LengthRecordFactors
+
+        cls = [40.0, 60.0, 80.0]
+        draws = pd.concat([pd.DataFrame({"species": sp, "gear": GEARS[g], "length_mm": L, "draw": np.arange(D),
+                                         "factor": np.exp(-theta[g, s] + 0.3 * (k - 1))})
+                           for s, sp in enumerate(SPECIES) for g in (1, 2) for k, L in enumerate(cls)],
+                          ignore_index=True)
+        conv = np.flatnonzero((rec["gear"] != GEARS[0]).to_numpy() & (rec["cpue"] > 0).to_numpy())
+        k = rng.integers(1, 4, len(conv))  # classes per record
+        r = np.repeat(conv, k)
+        first = np.repeat(rng.integers(0, 3, len(conv)), k)
+        within = np.arange(len(r)) - np.repeat(np.cumsum(k) - k, k)
+        rl = pd.DataFrame({"haul_id": rec["haul_id"].to_numpy()[r].astype(str), "species":
+                           rec["species"].to_numpy()[r].astype(str),
+                           "factor_length_mm": np.asarray(cls)[(first + within) % 3],
+                           "raised_count": rng.uniform(1.0, 20.0, len(r))})
+        rf = RecordFactors([LengthRecordFactors(draws, rl)])
+        print(f"record_lengths: {len(rl):,} rows")
     print(f"{len(rec):,} records ({(rec['cpue'] > 0).mean():.0%} non-zero), {D} draws; "
           f"peak so far {peak_gib():.2f} GiB")
     t0 = time.perf_counter()

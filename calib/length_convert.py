@@ -243,24 +243,39 @@ class LengthRecordFactors:
 
         from calib.errors import InputError, Problem
 
-        rec = pd.DataFrame({"haul_id": records["haul_id"].astype(str).to_numpy()[rows],
-                            "species": records["species"].astype(str).to_numpy()[rows],
-                            "gear": records[gear_column].astype(str).to_numpy()[rows],
-                            "pos": np.arange(len(rows))})
+        def codes_of(col):  # codes of the bound records into their distinct values, as text
+            v = records[col] if len(rows) == len(records) else records[col].iloc[rows]
+            c, labels = pd.factorize(v)
+            return c.astype(np.int64), pd.Index([str(x) for x in labels])
+
+        hc, h_labels = codes_of("haul_id")
+        sc, s_labels = codes_of("species")
+        gc, g_labels = codes_of(gear_column)
+        # each record_lengths row -> its bound record, through integer codes (no record-sized text)
         rl = self.record_lengths
-        rl = pd.DataFrame({"haul_id": rl["haul_id"].astype(str).to_numpy(), "species": rl["species"].astype(str).to_numpy(),
-                           "length_mm": rl["factor_length_mm"].to_numpy(dtype=float),
-                           "w": rl["raised_count"].to_numpy(dtype=float)})
-        m = rl.merge(rec, on=["haul_id", "species"], how="inner")
-        cls = self.classes.get_indexer(pd.MultiIndex.from_arrays([m["species"], m["gear"], m["length_mm"]]))
+        rh = h_labels.get_indexer(rl["haul_id"].astype(str))
+        rs = s_labels.get_indexer(rl["species"].astype(str))
+        key_rec = pd.Index(hc * len(s_labels) + sc)
+        pos = np.where((rh >= 0) & (rs >= 0), key_rec.get_indexer(rh * len(s_labels) + rs), -1)
+        keep = pos >= 0
+        pos = pos[keep]
+        length = rl["factor_length_mm"].to_numpy(dtype=float)[keep]
+        w = rl["raised_count"].to_numpy(dtype=float)[keep]
+        # class of each row: looked up once per distinct (species, gear, length)
+        combo = pd.MultiIndex.from_arrays([sc[pos], gc[pos], length])
+        uc = combo.unique()
+        inv = uc.get_indexer(combo)
+        ucls = self.classes.get_indexer(pd.MultiIndex.from_arrays(
+            [s_labels[uc.get_level_values(0)], g_labels[uc.get_level_values(1)], uc.get_level_values(2)]))
+        cls = ucls[inv]
         if (cls < 0).any():
-            r = m[cls < 0].iloc[0]
+            i = int(np.flatnonzero(cls < 0)[0])
             raise InputError([Problem(self.lengths_where, None, "factor_length_mm",
-                                      f"haul '{r['haul_id']}', {r['species']} with {r['gear']}: no class draws for "
-                                      f"{r['length_mm']:g} mm in {self.where}",
+                                      f"haul '{h_labels[hc[pos[i]]]}', {s_labels[sc[pos[i]]]} with "
+                                      f"{g_labels[gc[pos[i]]]}: no class draws for {length[i]:g} mm in {self.where}",
                                       "use record_lengths.csv and length_factor_draws.parquet of one conversion",
                                       False)])
-        W = csr_matrix((m["w"].to_numpy(), (m["pos"].to_numpy(), cls)), shape=(len(rows), len(self.classes)))
+        W = csr_matrix((w, (pos, cls)), shape=(len(rows), len(self.classes)))  # duplicates are summed
         total = np.asarray(W.sum(axis=1)).ravel()
         has = total > 0
         W = csr_matrix(W.multiply(1.0 / np.where(has, total, 1.0)[:, None]))
