@@ -274,6 +274,9 @@ def test_trend_command_runs_end_to_end_on_a_length_conversion(tmp_path, capsys):
                       gear_lengths={REF: 0.5, OTHER: 0.2}, large=(80, 100))
     noise = 0.05 * np.random.default_rng(1).standard_normal((400, 3))
     length_set(-np.log(np.tile([2.0, 1.0, 0.5], (400, 1))) + noise).save(tmp_path / "factors")
+    hauls = pd.read_csv(h)
+    hauls["source"] = np.where(np.arange(len(hauls)) % 2, "creek_partner", "channel_partner")  # two partners
+    hauls.to_csv(h, index=False)
     assert main(["convert", "--factors", str(tmp_path / "factors"), "--hauls", str(h), "--catches", str(c),
                  "--lengths", str(ln), "--out", str(tmp_path / "conv")]) == 0
     assert main(["series", "--converted", str(tmp_path / "conv"), "--out", str(tmp_path / "series")]) == 0
@@ -292,6 +295,9 @@ def test_trend_command_runs_end_to_end_on_a_length_conversion(tmp_path, capsys):
     assert tr["verdict"] == "mostly method artifact"
     manifest = json.loads((tmp_path / "trend" / "manifest.json").read_text())
     assert "record_lengths" in manifest["inputs"] and "length_factor_draws" in manifest["inputs"]
+    # each partner's series goes through the same per-record draws
+    src = pd.read_csv(tmp_path / "trend" / "source_series.csv")
+    assert set(src["source"]) == {"creek_partner", "channel_partner"} and len(src) == 2 * len(years)
 
 
 def test_missing_or_mismatched_files_are_clear_input_errors(by_length, tmp_path, capsys):
