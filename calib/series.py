@@ -944,6 +944,11 @@ def _bind_record_factors(rf, records, codes, part_of_fk, pick, D, uncertainty, w
         if not len(rows):
             fns.append(None)
             continue
+        missing = [c for c in prov.columns if c not in records.columns]
+        if missing:
+            raise InputError([Problem(where, None, c, f"column missing: the records converted by {prov.kind} need it "
+                                      "to find their own factor draws",
+                                      "pass the records with every column convert wrote", False) for c in missing])
         fn, has = prov.bind(records, rows, pick)
         bad = rows[~has & (codes.cpue[rows] > 0)]
         if len(bad):

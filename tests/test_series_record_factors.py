@@ -323,3 +323,9 @@ def test_missing_or_mismatched_files_are_clear_input_errors(by_length, tmp_path,
     fd.to_parquet(other / "length_factor_draws.parquet", index=False)
     with pytest.raises(InputError, match="not the same posterior draws"):
         series(other)
+    # a records frame without haul_id cannot be matched to record_lengths.csv
+    from calib.series import _read_converted
+
+    rec, fd, _, _, _, _, rf = _read_converted(out)
+    with pytest.raises(InputError, match="haul_id"):
+        series_draws(rec.drop(columns="haul_id"), fd, record_factors=rf)
