@@ -313,6 +313,11 @@ class Conversion:
         n_domain_flagged.
     manifest : factor_set_id, input hashes, counts, draws, interval, domain, timestamp, ...
     notes : things the user should know about this conversion.
+    length_factor_draws, record_lengths : (length factor sets) the class draws once per class and
+        each record's raised class counts (calib.length_convert).
+    covariate_factor_draws, covariate_term_draws : (covariate factor sets) the draws per
+        categorical level combination, and the draws of every term of theta (calib.covariate_convert).
+    Series and trend rebuild the draws of records converted by length or covariates from these.
 
     The converted records are held lean (haul position, species, count and factor per
     record, the hauls once) and ``records`` is built on first use; ``record_columns``

@@ -9,6 +9,9 @@ factors. Each record uses its own haul's covariate values, draw by draw:
 (the model of :mod:`calib.covariate_model`; ``centre_n`` is the calibration mean, in the manifest).
 Records are grouped by their key (species, gear, levels, numeric values), so the draws are worked
 out once per key, not per record.
+The draws of every term (theta_gs, each offset, each slope) are kept once per species x gear
+(``CovariateConversion.terms``, saved as ``covariate_term_draws.parquet``), from which
+:class:`CovariateRecordFactors` rebuilds any record's draws for ``calib series`` and ``calib trend``.
 
 Records are not converted (reasons in rejected.csv) when a covariate is blank or missing in the
 survey hauls (``covariate_missing``), when a categorical level was not among the calibrated
