@@ -313,6 +313,11 @@ class Conversion:
         n_domain_flagged.
     manifest : factor_set_id, input hashes, counts, draws, interval, domain, timestamp, ...
     notes : things the user should know about this conversion.
+    length_factor_draws, record_lengths : (length factor sets) the class draws once per class and
+        each record's raised class counts (calib.length_convert).
+    covariate_factor_draws, covariate_term_draws : (covariate factor sets) the draws per
+        categorical level combination, and the draws of every term of theta (calib.covariate_convert).
+    Series and trend rebuild the draws of records converted by length or covariates from these.
 
     The converted records are held lean (haul position, species, count and factor per
     record, the hauls once) and ``records`` is built on first use; ``record_columns``
@@ -329,6 +334,7 @@ class Conversion:
     length_factor_draws: pd.DataFrame | None = None
     covariate_factor_draws: pd.DataFrame | None = None
     record_lengths: pd.DataFrame | None = None
+    covariate_term_draws: pd.DataFrame | None = None  # see calib.covariate_convert.CovariateConversion.terms
     _records: pd.DataFrame | None = field(default=None, init=False, repr=False)
 
     @property
@@ -359,13 +365,10 @@ class Conversion:
         ``count / hauls.effort[haul]``; its factor_species and factor_gear are its species and
         its haul's gear.
         """
-        if self.manifest["counts"].get("covariate_converted"):
-            raise ValueError("this conversion holds records converted with their own covariate values: they have "
-                             "no single species x gear factor draw; series and trend do not handle them yet")
-        if self.manifest["counts"].get("length_converted"):
-            raise ValueError("this conversion holds records converted by length class: each has its own mix of "
-                             "class factors, so they have no single species x gear factor draw; series and trend "
-                             "do not handle length-converted records yet")
+        if self.manifest["counts"].get("covariate_converted") or self.manifest["counts"].get("length_converted"):
+            raise ValueError("this conversion holds records converted by length class or with their own covariate "
+                             "values: they have no single species x gear factor; use record_columns and "
+                             "calib.series.RecordFactors.from_conversion (series_draws does so itself)")
         st = self.store
         return {"hauls": st.hauls, "haul": st.haul, "species": st.species_code, "count": st.count,
                 "factor": st.factor, "species_labels": list(st.species), "factor_status": list(st.factor_status),
@@ -444,6 +447,8 @@ class Conversion:
                 self.record_lengths.to_csv(tmp / "record_lengths.csv", index=False, float_format="%.6g")
             if self.covariate_factor_draws is not None:
                 self.covariate_factor_draws.to_parquet(tmp / "covariate_factor_draws.parquet", index=False)
+            if self.covariate_term_draws is not None:
+                self.covariate_term_draws.to_parquet(tmp / "covariate_term_draws.parquet", index=False)
             (tmp / "manifest.json").write_text(json.dumps(self.manifest, indent=2, default=str) + "\n")
         return directory
 
@@ -987,7 +992,8 @@ def convert(factors, hauls, catches=None, *, species_recorded=None, species_name
         manifest["covariates"] = fs.manifest.get("covariates")
     return Conversion(rejected=rej, factor_draws=factor_draws, factors=factors_used, manifest=manifest,
                       notes=notes, store=store, length_factor_draws=length_draws, record_lengths=record_lengths,
-                      covariate_factor_draws=cconv.draws if cconv is not None else None)
+                      covariate_factor_draws=cconv.draws if cconv is not None else None,
+                      covariate_term_draws=cconv.terms if cconv is not None else None)
 
 
 def _text_codes(values: pd.Series) -> tuple[np.ndarray, list[str]]:
@@ -1155,7 +1161,9 @@ def run_convert_command(args) -> int:
     print(conversion.summary())
     written = ["records.parquet"] + (["records.csv"] if conversion.n_records <= CSV_MAX_ROWS else []) + [
         "rejected.csv", "factor_draws.parquet", "factors_used.csv", "manifest.json"] + (
-        ["length_factor_draws.parquet", "record_lengths.csv"] if conversion.length_factor_draws is not None else [])
+        ["length_factor_draws.parquet", "record_lengths.csv"] if conversion.length_factor_draws is not None else []) + (
+        ["covariate_factor_draws.parquet", "covariate_term_draws.parquet"]
+        if conversion.covariate_term_draws is not None else [])
     print(f"\nrows in {conversion.n_in} = converted {conversion.n_converted} + rejected {conversion.n_rejected}")
     print(f"Wrote {out}/: {', '.join(written)}")
     return 0

@@ -9,6 +9,9 @@ factors. Each record uses its own haul's covariate values, draw by draw:
 (the model of :mod:`calib.covariate_model`; ``centre_n`` is the calibration mean, in the manifest).
 Records are grouped by their key (species, gear, levels, numeric values), so the draws are worked
 out once per key, not per record.
+The draws of every term (theta_gs, each offset, each slope) are kept once per species x gear
+(``CovariateConversion.terms``, saved as ``covariate_term_draws.parquet``), from which
+:class:`CovariateRecordFactors` rebuilds any record's draws for ``calib series`` and ``calib trend``.
 
 Records are not converted (reasons in rejected.csv) when a covariate is blank or missing in the
 survey hauls (``covariate_missing``), when a categorical level was not among the calibrated
@@ -43,6 +46,12 @@ class CovariateConversion:
         makes every record its own key; its draws follow from posterior.nc and the value).
     use : species, gear, covariates, factor_status, factor_lower, factor_median, factor_upper,
         n_records (per key of the converted records).
+    terms : species, gear, term, covariate, level, draw, value (posterior_chain, posterior_draw: the
+        posterior sample of each draw): the draws of every term of theta_rec
+        (module docstring) for each species x gear converted this way -- ``theta`` (covariate and
+        level blank), ``offset`` (one per categorical covariate and level) and ``slope`` (one per
+        numeric covariate; its centre is in the manifest) -- from which any record's draws follow
+        (:class:`CovariateRecordFactors`).
     """
 
     code: np.ndarray
@@ -52,6 +61,10 @@ class CovariateConversion:
     key: np.ndarray
     draws: pd.DataFrame
     use: pd.DataFrame
+    terms: pd.DataFrame | None = None
+
+
+TERM_COLUMNS = ["species", "gear", "term", "covariate", "level", "draw", "value", "posterior_chain", "posterior_draw"]
 
 
 def convert_by_covariate(fs, hauls: pd.DataFrame, hp: np.ndarray, sc: np.ndarray, species_all: list[str],
@@ -110,7 +123,7 @@ def convert_by_covariate(fs, hauls: pd.DataFrame, hp: np.ndarray, sc: np.ndarray
     gear_h = hauls["gear"].to_numpy(dtype=object)[hp]
     spec_h = np.asarray(species_all, dtype=object)[sc]
     key_text = np.full(n, "", dtype=object)
-    draw_frames, use_rows = [], []
+    draw_frames, use_rows, term_frames = [], [], []
     rec = pd.DataFrame({"species": spec_h, "gear": gear_h, "rec": np.arange(n)})
     for (s, g), part in rec.groupby(["species", "gear"], sort=True):
         rows = part["rec"].to_numpy()
@@ -121,6 +134,18 @@ def convert_by_covariate(fs, hauls: pd.DataFrame, hp: np.ndarray, sc: np.ndarray
         offs = [flat(post[f"offset_{_safe(c)}"].sel(gear=g), f"level_{_safe(c)}")[idx] for c in cat]  # (D, L)
         slopes = flat(post["slope"].sel(gear=g), "numeric")[idx] if num else None  # (D, N)
         centre = np.array([info[c]["centre"] for c in num])
+        D = len(idx)
+        sample = {"posterior_chain": idx // n_draw, "posterior_draw": idx % n_draw}
+        term_frames.append(pd.DataFrame({"species": s, "gear": g, "term": "theta", "covariate": "", "level": "",
+                                         "draw": np.arange(D), "value": base, **sample}))
+        for k, c in enumerate(cat):
+            for li, lv in enumerate(info[c]["levels"]):
+                term_frames.append(pd.DataFrame({"species": s, "gear": g, "term": "offset", "covariate": c,
+                                                 "level": str(lv), "draw": np.arange(D), "value": offs[k][:, li],
+                                                 **sample}))
+        for k, c in enumerate(num):
+            term_frames.append(pd.DataFrame({"species": s, "gear": g, "term": "slope", "covariate": c, "level": "",
+                                             "draw": np.arange(D), "value": slopes[:, k], **sample}))
         # one key per distinct (levels, values)
         keys = np.column_stack([lev[rows].astype(float), val[rows]]) if (cat or num) else np.zeros((len(rows), 0))
         ukeys, kinv = np.unique(keys, axis=0, return_inverse=True)
@@ -175,7 +200,9 @@ def convert_by_covariate(fs, hauls: pd.DataFrame, hp: np.ndarray, sc: np.ndarray
         columns=["species", "gear", "covariates", "draw", "factor", "posterior_chain", "posterior_draw"])
     use = pd.DataFrame(use_rows, columns=["species", "gear", "covariates", "factor_status", "factor_lower",
                                           "factor_median", "factor_upper", "n_records"])
-    return CovariateConversion(code=code, quantiles=q, status=status, flag=flag, key=key_text, draws=draws, use=use)
+    terms = pd.concat(term_frames, ignore_index=True) if term_frames else pd.DataFrame(columns=TERM_COLUMNS)
+    return CovariateConversion(code=code, quantiles=q, status=status, flag=flag, key=key_text, draws=draws, use=use,
+                               terms=terms[TERM_COLUMNS])
 
 
 def covariate_reason(name: str, s: str, g: str, info: dict, factor_id: str) -> str:
@@ -191,4 +218,120 @@ def covariate_reason(name: str, s: str, g: str, info: dict, factor_id: str) -> s
             "and fill them in")
 
 
-__all__ = ["convert_by_covariate", "covariate_reason", "CovariateConversion"]
+class CovariateRecordFactors:
+    """Rebuilds, draw by draw, the factor of records converted with their own covariate values,
+    from what ``calib convert`` saved: the term draws (``covariate_term_draws``; see
+    :class:`CovariateConversion`) and the manifest's ``covariates`` entry (kinds, levels, centres).
+    For a record of species s and gear g with levels v_c and numeric values x_n,
+
+        m[d] = exp(-(theta_gs[d] + sum_c offset_c[g, v_c][d] + sum_n slope[g, n][d] (x_n - centre_n)))
+
+    the formula convert used (module docstring), so the record's median and interval over the
+    draws are its cpue_ref_median / lower / upper divided by its cpue. Draw d of every term is
+    the same posterior sample. Used by :func:`calib.series.series_draws`.
+    """
+
+    kind = "covariate"
+
+    def __init__(self, terms: pd.DataFrame, covariates: dict, where: str = "covariate_term_draws"):
+        from calib.errors import InputError, Problem
+
+        need = [c for c in TERM_COLUMNS[:7] if c not in terms.columns]
+        if need or not covariates:
+            raise InputError([Problem(where, None, c, "column missing", "convert again", False) for c in need]
+                             or [Problem(where, None, None, "the conversion manifest has no 'covariates' entry",
+                                         "convert again", False)])
+        t = pd.DataFrame({c: terms[c].astype(str).fillna("") if c not in ("draw", "value") else terms[c]
+                          for c in TERM_COLUMNS[:7]})
+        t["level"] = t["level"].replace("nan", "")
+        t["covariate"] = t["covariate"].replace("nan", "")
+        wide = t.pivot_table(index=["species", "gear", "term", "covariate", "level"], columns="draw",
+                             values="value", aggfunc="first", observed=True)
+        if wide.isna().any().any() or not np.isfinite(wide.to_numpy()).all():
+            raise InputError([Problem(where, None, "draw", "the covariate terms do not all have the same finite draws",
+                                      "convert again: every term is stored with the same draws", False)])
+        self.where = where
+        self.info = covariates
+        self.cat = [c for c, v in covariates.items() if v["kind"] == "categorical"]
+        self.num = [c for c, v in covariates.items() if v["kind"] == "numeric"]
+        self.columns = tuple(self.cat + self.num)
+        self.rows = wide.index
+        self.matrix = wide.to_numpy(dtype=float)
+        self.draw = wide.columns.to_numpy()
+        base = wide.index.get_level_values("term") == "theta"
+        self.keys = sorted(zip(wide.index.get_level_values(0)[base], wide.index.get_level_values(1)[base]))
+        from calib.length_convert import _posterior_of
+
+        self.posterior = _posterior_of(terms)
+
+    def bind(self, records: pd.DataFrame, rows: np.ndarray, pick: np.ndarray, gear_column: str = "gear"):
+        """For records ``rows`` of ``records`` (species, gear and the covariate columns): a function
+        giving the (len(idx), draws ``pick``) multiplier matrix of bound records ``idx``, and whether
+        each bound record has all its covariate values (convert rejects those that do not)."""
+        from calib.errors import InputError, Problem
+
+        missing = [c for c in self.columns if c not in records.columns]
+        if missing:
+            raise InputError([Problem(self.where, None, c, "covariate column missing from the converted records",
+                                      "convert again: records keep every hauls column", False) for c in missing])
+        n = len(rows)
+
+        def column(name):  # codes of the bound rows into a few labels (no per-record text)
+            codes, labels = pd.factorize(records[name].iloc[rows] if len(rows) < len(records) else records[name])
+            return codes, np.asarray([str(v).strip() for v in labels], dtype=object)
+
+        sp, ge = column("species"), column(gear_column)
+
+        def lookup(term, cov, level=None):
+            """Row of the term for each bound record (-1: none), looked up once per distinct key."""
+            parts = [sp, ge] + ([level] if level is not None else [])
+            radix = [len(lab) + 1 for _, lab in parts]
+            key = np.zeros(n, dtype=np.int64)
+            for (c, _), r in zip(parts, radix):  # one integer per combination (-1 -> 0: blank)
+                key *= r
+                key += c + 1
+            inv, ukey = pd.factorize(key)  # hash-based: no sort of the records
+            keys = np.zeros((len(ukey), len(parts)), dtype=np.int64)
+            rest = np.asarray(ukey, dtype=np.int64)
+            for k in range(len(parts) - 1, -1, -1):
+                keys[:, k] = rest % radix[k] - 1
+                rest = rest // radix[k]
+            labels = [lab[np.maximum(keys[:, k], 0)] for k, (_, lab) in enumerate(parts)]
+            lv = labels[2] if level is not None else np.full(len(keys), "", dtype=object)
+            found = self.rows.get_indexer(pd.MultiIndex.from_arrays(
+                [labels[0], labels[1], np.full(len(keys), term), np.full(len(keys), cov), lv]))
+            found[(keys < 0).any(axis=1)] = -1  # a blank value
+            return found[inv] if n else np.zeros(0, dtype=np.int64)
+
+        has = np.ones(n, dtype=bool)
+        base = lookup("theta", "")
+        has &= base >= 0
+        offsets = []
+        for c in self.cat:
+            r = lookup("offset", c, column(c))
+            has &= r >= 0
+            offsets.append(r)
+        slopes = []
+        for c in self.num:
+            x = pd.to_numeric(records[c], errors="coerce").to_numpy(dtype=float)[rows] - float(self.info[c]["centre"])
+            r = lookup("slope", c)
+            has &= (r >= 0) & np.isfinite(x)
+            slopes.append((r, np.where(np.isfinite(x), x, 0.0)))
+        M = np.ascontiguousarray(self.matrix[:, pick])
+
+        def multipliers(idx: np.ndarray) -> np.ndarray:
+            ok = has[idx]
+            th = M[np.where(ok, base[idx], 0)]
+            for r in offsets:
+                th += M[np.maximum(r[idx], 0)]
+            for r, x in slopes:
+                th += M[np.maximum(r[idx], 0)] * x[idx, None]
+            np.negative(th, out=th)
+            np.exp(th, out=th)
+            th[~ok] = 0.0
+            return th
+
+        return multipliers, has
+
+
+__all__ = ["convert_by_covariate", "covariate_reason", "CovariateConversion", "CovariateRecordFactors"]

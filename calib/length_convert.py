@@ -189,3 +189,106 @@ def convert_by_length(fs, tables, hauls: pd.DataFrame, hp: np.ndarray, sc: np.nd
     class_use = pd.DataFrame(use_rows, columns=["species", "gear", "length_mm", "n_records"])
     return LengthConversion(code=code, quantiles=q, status=status, flag=flag, draws=draws,
                             record_lengths=record_lengths, class_use=class_use)
+
+
+# ----------------------------------------------------------------------------- rebuilding draws
+
+
+class LengthRecordFactors:
+    """Rebuilds, draw by draw, the effective factor of records converted by length class, from
+    what ``calib convert`` saved: the class draws (``length_factor_draws``: species, gear,
+    length_mm, draw, factor) and the raised class counts (``record_lengths``: haul_id, species,
+    factor_length_mm, raised_count). For record i of species s and gear g, with raised counts C_l,
+
+        m_i[d] = sum_l C_l factor_{s,g,l}[d] / sum_l C_l
+
+    (module docstring: cpue_ref[d] = cpue * m_i[d]), the same mix convert summarised in
+    cpue_ref_median / lower / upper. Draw d of every class is the same posterior sample, so
+    records sharing a class share its draws. Used by :func:`calib.series.series_draws`.
+    """
+
+    columns = ("haul_id",)  # record columns needed besides species and gear
+    kind = "length"
+
+    def __init__(self, class_draws: pd.DataFrame, record_lengths: pd.DataFrame, where: str = "length_factor_draws",
+                 lengths_where: str = "record_lengths.csv"):
+        from calib.errors import InputError, Problem
+
+        need = [c for c in ("species", "gear", "length_mm", "draw", "factor") if c not in class_draws.columns]
+        need_rl = [c for c in ("haul_id", "species", "factor_length_mm", "raised_count")
+                   if c not in record_lengths.columns]
+        if need or need_rl:
+            raise InputError([Problem(w, None, c, "column missing", "convert again with --lengths", False)
+                              for w, cols in ((where, need), (lengths_where, need_rl)) for c in cols])
+        d = class_draws.assign(species=class_draws["species"].astype(str), gear=class_draws["gear"].astype(str),
+                               length_mm=class_draws["length_mm"].astype(float))
+        wide = d.pivot_table(index=["species", "gear", "length_mm"], columns="draw", values="factor",
+                             aggfunc="first", observed=True)
+        if wide.isna().any().any() or not np.isfinite(wide.to_numpy()).all():
+            raise InputError([Problem(where, None, "draw", "the length classes do not all have the same finite draws",
+                                      "convert again: every class is stored with the same draws", False)])
+        self.where, self.lengths_where = where, lengths_where
+        self.classes = wide.index  # (species, gear, length_mm)
+        self.matrix = wide.to_numpy(dtype=float)  # (classes, draws)
+        self.draw = wide.columns.to_numpy()
+        self.keys = sorted(set(zip(self.classes.get_level_values(0), self.classes.get_level_values(1))))
+        self.posterior = _posterior_of(d)
+        self.record_lengths = record_lengths
+
+    def bind(self, records: pd.DataFrame, rows: np.ndarray, pick: np.ndarray, gear_column: str = "gear"):
+        """For records ``rows`` of ``records`` (species, gear, haul_id): a function giving the
+        (len(idx), draws ``pick``) multiplier matrix of bound records ``idx`` (0..len(rows)-1),
+        and whether each bound record has lengths (a zero catch has none: its multiplier is 0)."""
+        from scipy.sparse import csr_matrix
+
+        from calib.errors import InputError, Problem
+
+        def codes_of(col):  # codes of the bound records into their distinct values, as text
+            v = records[col] if len(rows) == len(records) else records[col].iloc[rows]
+            c, labels = pd.factorize(v)
+            return c.astype(np.int64), pd.Index([str(x) for x in labels])
+
+        hc, h_labels = codes_of("haul_id")
+        sc, s_labels = codes_of("species")
+        gc, g_labels = codes_of(gear_column)
+        # each record_lengths row -> its bound record, through integer codes (no record-sized text)
+        rl = self.record_lengths
+        rh = h_labels.get_indexer(rl["haul_id"].astype(str))
+        rs = s_labels.get_indexer(rl["species"].astype(str))
+        key_rec = pd.Index(hc * len(s_labels) + sc)
+        pos = np.where((rh >= 0) & (rs >= 0), key_rec.get_indexer(rh * len(s_labels) + rs), -1)
+        keep = pos >= 0
+        pos = pos[keep]
+        length = rl["factor_length_mm"].to_numpy(dtype=float)[keep]
+        w = rl["raised_count"].to_numpy(dtype=float)[keep]
+        # class of each row: looked up once per distinct (species, gear, length)
+        combo = pd.MultiIndex.from_arrays([sc[pos], gc[pos], length])
+        uc = combo.unique()
+        inv = uc.get_indexer(combo)
+        ucls = self.classes.get_indexer(pd.MultiIndex.from_arrays(
+            [s_labels[uc.get_level_values(0)], g_labels[uc.get_level_values(1)], uc.get_level_values(2)]))
+        cls = ucls[inv]
+        if (cls < 0).any():
+            i = int(np.flatnonzero(cls < 0)[0])
+            raise InputError([Problem(self.lengths_where, None, "factor_length_mm",
+                                      f"haul '{h_labels[hc[pos[i]]]}', {s_labels[sc[pos[i]]]} with "
+                                      f"{g_labels[gc[pos[i]]]}: no class draws for {length[i]:g} mm in {self.where}",
+                                      "use record_lengths.csv and length_factor_draws.parquet of one conversion",
+                                      False)])
+        W = csr_matrix((w, (pos, cls)), shape=(len(rows), len(self.classes)))  # duplicates are summed
+        total = np.asarray(W.sum(axis=1)).ravel()
+        has = total > 0
+        W = csr_matrix(W.multiply(1.0 / np.where(has, total, 1.0)[:, None]))
+        F = np.ascontiguousarray(self.matrix[:, pick])
+
+        def multipliers(idx: np.ndarray) -> np.ndarray:
+            return np.asarray(W[idx] @ F)
+
+        return multipliers, has
+
+
+def _posterior_of(d: pd.DataFrame) -> pd.DataFrame | None:
+    """draw -> (posterior_chain, posterior_draw), to check two draw tables share posterior samples."""
+    if not {"posterior_chain", "posterior_draw"} <= set(d.columns) or not len(d):
+        return None
+    return d.groupby("draw")[["posterior_chain", "posterior_draw"]].first()

@@ -67,6 +67,15 @@ what the joint resampling of one stratum x year's hauls implies.
   when the skewness is below 1e-3, and sums are kept >= 0. tests/test_series.py checks the
   quantiles against exact resampling above the threshold.
 
+Records with their own factor (converted by length class or with their own covariate values;
+:class:`RecordFactors`): record i's converted cpue for draw d is x_i m_i[d], m_i rebuilt from the
+conversion's files with draw d of the same posterior sample as every other factor. Exact
+resampling sums x_i m_i[d] over the same picks as the raw sum. Moment matching uses, per cell and
+draw, the moments of the non-zero x_i m_i[d] (a shifted gamma with the raw sum's K) and a normal
+correlated with the raw sum's by the correlation of x and x m[d] over the cell's hauls (the
+correlation of the two sums of the same picks; a Gaussian copula). Multipliers are built about
+2^20 values at a time; cost O(their non-zero records x draws) on top of the path above.
+
 Species are resampled independently (each species' series on its own); trend (issue 4) and
 any other consumer of paired draws should call :func:`series_draws` rather than re-implement
 the pairing.
@@ -234,6 +243,101 @@ def _factor_matrix(factor_draws: pd.DataFrame, where: str) -> tuple[np.ndarray, 
         raise InputError([Problem(where, None, "factor", "some factor draws are not finite numbers",
                                   "convert again: convert never stores non-finite draws", False)])
     return values, keys, draw
+
+
+@dataclass
+class RecordFactors:
+    """Per-record factor draws of records converted by length class or with their own covariate
+    values (each such record has its own factor, not one per species x gear).
+
+    ``parts`` are the conversion kinds present (:class:`calib.length_convert.LengthRecordFactors`,
+    :class:`calib.covariate_convert.CovariateRecordFactors`); each knows the species x gear keys it
+    converted (``keys``), the record columns it needs (``columns``), its draw numbers (``draw``) and
+    ``bind(records, rows, pick)``, which returns a function giving, for a chunk of the bound records,
+    the (records x draws) multiplier matrix m with cpue_ref[d] = cpue * m[d]. Build one with
+    :meth:`from_directory` or :meth:`from_conversion`; pass it to :func:`series_draws`.
+    """
+
+    parts: list
+
+    @property
+    def keys(self) -> list[tuple[str, str]]:
+        return [k for p in self.parts for k in p.keys]
+
+    @property
+    def columns(self) -> list[str]:
+        return list(dict.fromkeys(c for p in self.parts for c in p.columns))
+
+    @classmethod
+    def from_directory(cls, d: Path, manifest: dict) -> "RecordFactors | None":
+        """From the files ``calib convert`` wrote into ``d`` (None when no record needs them)."""
+        from calib.covariate_convert import CovariateRecordFactors
+        from calib.length_convert import LengthRecordFactors
+
+        counts = manifest.get("counts", {})
+        parts = []
+        if counts.get("length_converted"):
+            fp, rp = d / "length_factor_draws.parquet", d / "record_lengths.csv"
+            _need_files(d, [fp, rp], "convert again with --lengths")
+            parts.append(LengthRecordFactors(_read(pd.read_parquet, fp),
+                                             _read(pd.read_csv, rp, dtype={"haul_id": str, "species": str}),
+                                             where=str(fp), lengths_where=str(rp)))
+        if counts.get("covariate_converted"):
+            tp = d / "covariate_term_draws.parquet"
+            _need_files(d, [tp], "convert again with this version of calib: it stores the term draws that "
+                                 "series and trend rebuild each record's factor from")
+            parts.append(CovariateRecordFactors(_read(pd.read_parquet, tp), manifest.get("covariates") or {},
+                                                where=str(tp)))
+        return cls(parts) if parts else None
+
+    @classmethod
+    def from_conversion(cls, conversion) -> "RecordFactors | None":
+        """From a :class:`calib.convert.Conversion` in memory (None when no record needs them)."""
+        from calib.covariate_convert import CovariateRecordFactors
+        from calib.length_convert import LengthRecordFactors
+
+        counts = conversion.manifest.get("counts", {})
+        parts = []
+        if counts.get("length_converted"):
+            parts.append(LengthRecordFactors(conversion.length_factor_draws, conversion.record_lengths))
+        if counts.get("covariate_converted"):
+            parts.append(CovariateRecordFactors(conversion.covariate_term_draws,
+                                                conversion.manifest.get("covariates") or {}))
+        return cls(parts) if parts else None
+
+    def check_draws(self, factor_draws: pd.DataFrame, draw_numbers: np.ndarray, where: str) -> np.ndarray:
+        """The draw numbers shared with factor_draws (all of them when it is empty); an InputError
+        when the tables hold different draws or different posterior samples for a draw."""
+        from calib.length_convert import _posterior_of
+
+        ref = _posterior_of(factor_draws) if len(factor_draws) else None
+        for p in self.parts:
+            numbers = draw_numbers if len(factor_draws) else p.draw
+            same = len(p.draw) == len(numbers) and np.array_equal(np.sort(p.draw), np.sort(numbers))
+            if same and ref is not None and p.posterior is not None:
+                same = ref.reindex(p.posterior.index).equals(p.posterior)
+            if not same:
+                raise InputError([Problem(getattr(p, "where", where), None, "draw",
+                                          f"the {p.kind} factor draws are not the same posterior draws as {where}",
+                                          "use the files of one conversion, or convert again", False)])
+            draw_numbers = numbers
+            ref = ref if ref is not None else p.posterior
+        return draw_numbers
+
+
+def _need_files(d: Path, files, fix: str) -> None:
+    missing = [f for f in files if not f.is_file()]
+    if missing:
+        raise InputError([Problem(str(f), None, None, "file not found in the converted directory", fix, False)
+                          for f in missing])
+
+
+def _read(reader, path, **kw):
+    try:
+        return reader(path, **kw)
+    except (OSError, ValueError) as err:
+        raise InputError([Problem(str(path), None, None, f"cannot be read ({err})",
+                                  "convert again into a new directory", False)]) from None
 
 
 @dataclass
@@ -423,7 +527,8 @@ def _codes_from_conversion(conversion, fkeys, by_stratum: bool, where: str) -> _
 def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = None, seed: int = 0,
                  by_stratum: bool = True, uncertainty: str = "both", exact_max_hauls: int = EXACT_MAX_HAULS,
                  incomplete: str = "flag", where: str = "records",
-                 draws_where: str = "factor_draws", stream: int | None = None) -> SeriesDraws:
+                 draws_where: str = "factor_draws", stream: int | None = None,
+                 record_factors: RecordFactors | None = None) -> SeriesDraws:
     """Paired draws of the harmonized (and raw) series: the estimator shared by series and trend.
 
     Parameters
@@ -453,6 +558,12 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
         the resampling its own stream, ``default_rng([seed, stream])``, after the same pick of
         draws. Series of disjoint subsets of records (e.g. one per source) compared draw by
         draw need the same factor draws but independent resamples: give each its own stream.
+    record_factors : the per-record factor draws of records converted by length class or with
+        their own covariates (:class:`RecordFactors`; built from a Conversion automatically). A
+        DataFrame of such records then needs haul_id (length) or the covariate columns. Each such
+        record's converted cpue for draw d is cpue * m[d], its own multiplier rebuilt from the same
+        factor draw d as every other record; resampling is the same, the moment-matched path uses
+        each draw's moments of the converted values (module docstring).
 
     Returns
     -------
@@ -471,8 +582,31 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
         raise ValueError(f"incomplete must be one of {INCOMPLETE}, not {incomplete!r}")
     if int(exact_max_hauls) != exact_max_hauls or exact_max_hauls < 1:
         raise ValueError(f"exact_max_hauls must be a positive whole number, not {exact_max_hauls}")
-    F_all, fkeys, draw_numbers = _factor_matrix(factor_draws, draws_where)
     is_conv = isinstance(records, Conversion)
+    rf = record_factors
+    if is_conv and rf is None:
+        rf = RecordFactors.from_conversion(records)
+    if is_conv and rf is not None:  # such records have no single species x gear factor: work on a frame
+        wanted = list(dict.fromkeys(list(REQUIRED) + list(OPTIONAL) + rf.columns))
+        records = records.record_columns([c for c in wanted if c in records.store.columns])
+        is_conv = False
+    if rf is not None and not len(factor_draws):
+        F_all, fkeys, draw_numbers = np.zeros((0, 0)), [], np.zeros(0, dtype=np.int64)
+    else:
+        F_all, fkeys, draw_numbers = _factor_matrix(factor_draws, draws_where)
+    rm_fk = np.zeros(len(fkeys), dtype=bool)  # factor rows whose records carry their own multipliers
+    part_of_fk = np.full(len(fkeys), -1, dtype=np.int64)
+    if rf is not None:
+        draw_numbers = rf.check_draws(factor_draws, draw_numbers, draws_where)
+        clash = sorted(set(rf.keys) & set(fkeys))
+        if clash:
+            raise InputError([Problem(draws_where, None, "species", f"'{clash[0][0]}' with '{clash[0][1]}' has both "
+                                      "species-level and per-record factor draws", "convert again", False)])
+        part_of_fk = np.r_[part_of_fk, [p for p, part in enumerate(rf.parts) for _ in part.keys]].astype(np.int64)
+        # their factor row is 1: the record's own multiplier carries the conversion
+        F_all = np.vstack([F_all.reshape(-1, len(draw_numbers)), np.ones((len(rf.keys), len(draw_numbers)))])
+        fkeys = list(fkeys) + rf.keys
+        rm_fk = part_of_fk >= 0
     n = records.n_records if is_conv else len(records)
     if n == 0:
         raise InputError([Problem(where, None, None, "there are no converted records",
@@ -500,6 +634,9 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
         raise _problem(where, bad, "cpue", "cpue is not a finite number >= 0", "convert again from valid tables")
     species, strata, area = codes.species, codes.strata, codes.area
     has_strata = codes.stratified
+    mult, rm_rec = None, None
+    if rm_fk.any():
+        mult, rm_rec = _bind_record_factors(rf, records, codes, part_of_fk, pick, D, uncertainty, where)
     S_, H, NF = len(species), len(strata), len(codes.f_gear)
 
     # --- cells: species x year x stratum x factor key; key = species * (Y H NF) + the haul's part,
@@ -592,9 +729,22 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
     exact_u = nz_u <= exact_max_hauls
     resample = uncertainty != "conversion"
     exact_c = exact_u[unit_of_cell] & (nz_c > 0)
-    S_exact = None
+    # cells of records with their own multipliers (length- or covariate-converted): their converted
+    # sums are not factor x raw sum; their non-zero records, sorted by cell, are visited in chunks
+    rm_c = rm_fk[fk_c]
+    rm_any = mult is not None and bool(rm_c.any())
+    if rm_any:
+        cor = cell_of_records()
+        rsel = np.flatnonzero(rm_rec & (cpue > 0))
+        rcell = cor[rsel]
+        o = np.argsort(rcell, kind="stable")
+        rm_order, rm_cell = rsel[o], rcell[o]
+        rm_ptr = np.r_[0, np.cumsum(np.bincount(rcell, minlength=C))]
+        del cor, rsel, rcell, o
+    S_exact = Sh_exact = None
     if resample and exact_c.any():
-        S_exact = _exact_sums(rng, cpue, cell_of_records(), unit_of_cell, ustart, n_u, nz_c, exact_c, D)
+        S_exact, Sh_exact = _exact_sums(rng, cpue, cell_of_records(), unit_of_cell, ustart, n_u, nz_c, exact_c, D,
+                                        mult=mult if rm_any else None, rm_c=rm_c)
     del key
     F_use = F if uncertainty != "sampling" else np.repeat(np.median(F, axis=1)[:, None], D, axis=1)
     harm_u, raw_u = np.empty((U, D)), np.empty((U, D))
@@ -603,31 +753,56 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
     # a sparse (units x factors) times dense (factors x draws) product
     from scipy.sparse import csr_matrix
 
-    point_u = csr_matrix((sx / n_u[unit_of_cell], (unit_of_cell, fk_c)), shape=(U, F_use.shape[0])) @ F_use
-    point_u = np.asarray(point_u)
+    point_u = csr_matrix((np.where(rm_c, 0.0, sx) / n_u[unit_of_cell], (unit_of_cell, fk_c)),
+                         shape=(U, F_use.shape[0])) @ F_use
+    point_u = np.asarray(point_u)  # cells with per-record multipliers are added block by block below
     ex_row = np.cumsum(exact_c) - 1  # row of each exact cell in S_exact
+    exh_row = np.cumsum(exact_c & rm_c) - 1  # row of each exact cell with multipliers in Sh_exact
     uend = np.r_[ustart[1:], C]
     u0 = 0
     while u0 < U:  # blocks of whole units, about _BLOCK cell x draw values each (kept in cache)
         u1 = max(u0 + 1, int(np.searchsorted(uend, ustart[u0] + max(_BLOCK // D, 1), side="right")))
         c0, c1 = ustart[u0], uend[u1 - 1]
+        rc = rm_c[c0:c1] if rm_any else np.zeros(c1 - c0, dtype=bool)
+        mm = ~exact_u[u0:u1] if resample else np.zeros(u1 - u0, dtype=bool)
+        P = None
+        if rc.any():  # sums of the converted values, draw by draw (higher powers for moment matching)
+            P = _power_sums(mult, cpue, rm_order, rm_cell, rm_ptr, c0, c1, D, higher=bool(mm.any()))
         if resample:
             S = np.zeros((c1 - c0, D))
+            Sh = np.zeros((c1 - c0, D)) if P is not None else S  # converted sums where they differ
             ex = np.flatnonzero(exact_c[c0:c1])
             if len(ex):
                 S[ex] = S_exact[ex_row[c0 + ex]]
-            mm = ~exact_u[u0:u1]
+                if P is not None:
+                    Sh[ex] = S[ex]
+                    exr = ex[rc[ex]]
+                    if len(exr):
+                        Sh[exr] = Sh_exact[exh_row[c0 + exr]]
             if mm.any():
+                hm = None
+                if P is not None:  # each draw's moments of the converted values, and their covariance with cpue
+                    with np.errstate(divide="ignore", invalid="ignore"):
+                        cov = np.where(nz_c[c0:c1, None] > 0, P[3] / nz_c[c0:c1, None], 0.0) - \
+                            mu_nz[c0:c1, None] * np.where(nz_c[c0:c1, None] > 0, P[0] / nz_c[c0:c1, None], 0.0)
+                    hm = (*_central_moments(nz_c[c0:c1, None], *P[:3]), cov)
                 _moment_matched_block(S, rng, unit_of_cell[c0:c1] - u0, ustart[u0:u1] - c0, mm, n_u[u0:u1],
-                                      nz_c[c0:c1], mu_nz[c0:c1], var_nz[c0:c1], m3_nz[c0:c1])
+                                      nz_c[c0:c1], mu_nz[c0:c1], var_nz[c0:c1], m3_nz[c0:c1],
+                                      Sh=Sh if P is not None else None, rm=rc, harm=hm)
         else:
             S = np.broadcast_to(sx[c0:c1, None], (c1 - c0, D))
+            Sh = S
+            if P is not None:
+                Sh = np.array(S)
+                Sh[rc] = P[0][rc]
         starts = ustart[u0:u1] - c0
         nu = n_u[u0:u1, None]
         raw_u[u0:u1] = np.add.reduceat(S, starts, axis=0) / nu
         FS = F_use[fk_c[c0:c1]]
-        FS *= S
+        FS *= Sh
         harm_u[u0:u1] = np.add.reduceat(FS, starts, axis=0) / nu
+        if P is not None:  # observed hauls converted with their own multipliers, draw by draw
+            point_u[u0:u1] += np.add.reduceat(P[0], starts, axis=0) / nu
         u0 = u1
     del S_exact
 
@@ -742,10 +917,113 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
                 "strata": [strata[h] for h in np.unique(u_st)] if has_strata else [],
                 "strata_without_area": no_area,
                 "units_exact": int(exact_u.sum()), "units_moment_matched": int((~exact_u).sum()),
-                "cells": int(C), "records": int(n), "effort_units": codes.effort_units}
+                "cells": int(C), "records": int(n), "effort_units": codes.effort_units,
+                "records_with_own_factor": int(rm_rec.sum()) if rm_rec is not None else 0,
+                "own_factor_kinds": [p.kind for p in rf.parts] if rf is not None and rm_rec is not None else []}
     return SeriesDraws(table=table, value=value, raw=raw, estimate=estimate, raw_estimate=np.asarray(raw_points),
                        draw=draw_numbers[pick], species=[species[i] for i in np.unique(u_sp)],
                        years=years[np.unique(u_yc)], settings=settings)
+
+
+def _bind_record_factors(rf, records, codes, part_of_fk, pick, D, uncertainty, where):
+    """The multiplier function of the records with their own factor draws, and which they are.
+
+    Returns (mult, rm) where ``mult(idx)`` is the (len(idx), D) matrix of the records' multipliers
+    at the draws used (1 for records converted with a species x gear factor; each record's median
+    over the draws when ``uncertainty == "sampling"``) and ``rm`` marks the records that have their
+    own; (None, None) when no record does.
+    """
+    fk = codes.f_row[codes.sp, codes.f]  # per record: frame records only
+    part = np.where(fk >= 0, part_of_fk[np.maximum(fk, 0)], -1)
+    if not (part >= 0).any():
+        return None, None
+    row = np.full(codes.n, -1, dtype=np.int64)
+    fns = []
+    for p, prov in enumerate(rf.parts):
+        rows = np.flatnonzero(part == p)
+        if not len(rows):
+            fns.append(None)
+            continue
+        missing = [c for c in prov.columns if c not in records.columns]
+        if missing:
+            raise InputError([Problem(where, None, c, f"column missing: the records converted by {prov.kind} need it "
+                                      "to find their own factor draws",
+                                      "pass the records with every column convert wrote", False) for c in missing])
+        fn, has = prov.bind(records, rows, pick)
+        bad = rows[~has & (codes.cpue[rows] > 0)]
+        if len(bad):
+            what = ("have no measured lengths in record_lengths.csv" if prov.kind == "length" else
+                    "have covariate values with no term draws in covariate_term_draws.parquet")
+            raise _problem(where, bad, "haul_id" if prov.kind == "length" else "species",
+                           f"{len(bad)} records with a catch converted by {prov.kind} {what}",
+                           "use the files of one conversion, or convert again")
+        row[rows] = np.arange(len(rows))
+        fns.append(fn)
+
+    def mult(idx: np.ndarray) -> np.ndarray:
+        M = np.ones((len(idx), D))
+        pp = part[idx]
+        for p, fn in enumerate(fns):
+            if fn is not None:
+                sel = np.flatnonzero(pp == p)
+                if len(sel):
+                    M[sel] = fn(row[idx[sel]])
+        if uncertainty == "sampling":
+            M[:] = np.median(M, axis=1, keepdims=True)
+        return M
+
+    return mult, part >= 0
+
+
+def _power_sums(mult, cpue, order, cell, ptr, c0, c1, D, higher: bool):
+    """Sums over the non-zero records of cells c0..c1 of y[d] = cpue * m[d] (and of y^2, y^3 and
+    cpue * y when ``higher``), as (c1 - c0, D) arrays. ``order`` lists those records sorted by ``cell``; ``ptr``
+    gives each cell's first position in it. Records are taken about 2^20 values at a time."""
+    P = [np.zeros((c1 - c0, D)) for _ in range(4 if higher else 1)]
+    a, b = int(ptr[c0]), int(ptr[c1])
+    step = max(1, (1 << 20) // D)
+    for s0 in range(a, b, step):
+        idx = order[s0:min(s0 + step, b)]
+        cl = cell[s0:min(s0 + step, b)] - c0
+        st = np.flatnonzero(np.r_[True, cl[1:] != cl[:-1]])
+        y = mult(idx)
+        x = cpue[idx][:, None]
+        y *= x
+        P[0][cl[st]] += np.add.reduceat(y, st, axis=0)
+        if higher:
+            P[3][cl[st]] += np.add.reduceat(y * x, st, axis=0)
+            y2 = y * y
+            P[1][cl[st]] += np.add.reduceat(y2, st, axis=0)
+            y2 *= y
+            P[2][cl[st]] += np.add.reduceat(y2, st, axis=0)
+    return P
+
+
+def _pearson3_sum(K, z, mu, sd, g):
+    """Sum of K picks with mean mu, sd and skewness g per pick, as a shifted gamma (Pearson type
+    III) driven by the standard normal z: the transformation of :func:`_moment_matched_block`,
+    with the exact gamma variate (shape below 2) taken as the gamma quantile of Phi(z), so
+    correlated normals give correlated raw and converted sums (a Gaussian copula). Arrays
+    broadcast; values kept >= 0."""
+    from scipy.special import gammaincinv, ndtr
+
+    K, z = np.asarray(K, dtype=float), np.asarray(z, dtype=float)
+    mu, sd, g = (np.broadcast_to(np.asarray(v, dtype=float), K.shape) for v in (mu, sd, g))
+    gam = np.abs(g) >= 1e-3
+    gs = np.where(gam, g, 1.0)
+    out = K * mu
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        b = np.abs(gs) / 6.0
+        bt = np.where(K > 0, b / np.sqrt(np.where(K > 0, K, 1.0)), 0.0)
+        t = 1.0 - bt * bt + z * bt
+        wh = out + K * (2.0 * sd / gs) * (t * t * t - 1.0)
+        shape = 4.0 * K / (gs * gs)
+        small = gam & (shape < 2.0) & (K > 0)
+        if small.any():
+            G = gammaincinv(shape[small], ndtr(z[small]))
+            wh[small] = out[small] + np.sign(gs[small]) * (sd[small] * np.abs(gs[small]) / 2.0) * (G - shape[small])
+        out = np.where(gam, wh, out + np.sqrt(K) * sd * z)
+    return np.maximum(out, 0.0)
 
 
 def _central_moments(n, s1, s2, s3) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -804,7 +1082,8 @@ def _lookup_unique(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.flatnonzero(present), lut[keys]
 
 
-def _exact_sums(rng, cpue, cell_of, unit_of_cell, ustart, n_u, nz_c, exact_c, D) -> np.ndarray:
+def _exact_sums(rng, cpue, cell_of, unit_of_cell, ustart, n_u, nz_c, exact_c, D, mult=None, rm_c=None
+                ) -> tuple[np.ndarray, np.ndarray | None]:
     """Exact bootstrap sums for the cells of small units: S[row, d] is the sum of the cpue of
     cell ``exact_c``-row's hauls in resample d of its unit.
 
@@ -813,6 +1092,10 @@ def _exact_sums(rng, cpue, cell_of, unit_of_cell, ustart, n_u, nz_c, exact_c, D)
     zeros / n)), drawn by conditional binomials. Given K, the K picks are uniform among the
     cell's non-zero values and are summed. Cost O(cells x draws + picks), picks about
     (non-zero hauls) x draws, at most ``exact_max_hauls`` x units x draws.
+
+    With ``mult`` (records' own multipliers, :func:`_bind_record_factors`) the second array holds,
+    for the exact cells marked in ``rm_c``, the sums of the same picks' converted values
+    cpue * m[d] of draw d (None without). Returns (S, Sh).
     """
     cells = np.flatnonzero(exact_c)
     units = np.unique(unit_of_cell[cells])
@@ -825,6 +1108,9 @@ def _exact_sums(rng, cpue, cell_of, unit_of_cell, ustart, n_u, nz_c, exact_c, D)
     K = K_all[exact_c[ucells]]
     del K_all
     S = np.zeros((len(cells), D))
+    rm_e = rm_c[cells] if mult is not None else np.zeros(len(cells), dtype=bool)
+    Sh = np.zeros((int(rm_e.sum()), D)) if rm_e.any() else None
+    sh_row = np.cumsum(rm_e) - 1
     sel = np.flatnonzero(exact_c[cell_of] & (cpue > 0))
     order = sel[np.argsort(cell_of[sel], kind="stable")]  # non-zero records of exact cells, by cell
     x = cpue[order]
@@ -839,11 +1125,19 @@ def _exact_sums(rng, cpue, cell_of, unit_of_cell, ustart, n_u, nz_c, exact_c, D)
         c = cd // D + i
         pos = start[c] + (rng.random(len(cd)) * nz_c[cells[c]]).astype(np.int64)
         S[i:j] = np.bincount(cd, weights=x[pos], minlength=len(k)).reshape(j - i, D)
+        here = rm_e[i:j]
+        if Sh is not None and here.any():  # the same picks, each with its record's multiplier of draw d
+            a, b = start[i], start[j - 1] + nz_c[cells[j - 1]]
+            M = mult(order[a:b])
+            at = np.flatnonzero(here[c - i])
+            w = x[pos[at]] * M[pos[at] - a, cd[at] % D]
+            Sh[sh_row[i:j][here]] = np.bincount(cd[at], weights=w, minlength=len(k)).reshape(j - i, D)[here]
         i = j
-    return S
+    return S, Sh
 
 
-def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean, var, m3) -> None:
+def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean, var, m3, Sh=None, rm=None,
+                          harm=None) -> None:
     """Moment-matched resampled sums for the large units of one block (rows of S, in place).
 
     The picks of each cell's non-zero hauls, K = (K_c) with the unit's zeros as one more
@@ -859,6 +1153,14 @@ def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean
     "The distribution of chi-square", PNAS 17: 684-688; accurate to about the third moment for
     k >= 2 -- recalled from memory), an exact gamma variate where k < 2, a normal where
     |g| < 1e-3. Values are kept >= 0 (a sum of catch rates).
+
+    With ``Sh`` (converted sums, in place), the rows marked in ``rm`` hold records with their own
+    multipliers: their converted sum of draw d is the same construction with that draw's moments
+    of the converted values y = cpue * m[d] (``harm``: mean, variance, third central moment and
+    covariance with cpue, each (rows, D)), with the same K as the raw sum and a normal correlated
+    with the raw sum's by rho = cov / (sd_x sd_y), the correlation of x and y over the cell's hauls,
+    which is also that of the two sums of the same K picks (a Gaussian copula; rho = 1 when every
+    record has the same multiplier). Other rows of ``Sh`` get the raw sums.
     """
     D = S.shape[1]
     rows = np.flatnonzero(mm_unit[unit_of_cell] & (nz_c > 0))
@@ -905,6 +1207,9 @@ def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean
         bt = np.divide(b, root, out=np.zeros_like(K), where=root > 0)  # b / sqrt(K); 0 without picks
         del root
         t = rng.standard_normal(K.shape, dtype=f4)
+        own = rm[rows] if Sh is not None else None
+        if own is not None and own.any():
+            z_own = t[own].astype(float)
         t -= bt
         t *= bt
         t += 1.0  # 1 - b^2/K + z b / sqrt(K)
@@ -926,7 +1231,23 @@ def _moment_matched_block(S, rng, unit_of_cell, ustart, mm_unit, n_u, nz_c, mean
         out[nor] = K[nor] * mu[nor] + np.sqrt(K[nor]) * sd[nor].astype(f4)[:, None] * rng.standard_normal(
             (int(nor.sum()), D), dtype=f4)
     np.maximum(out, 0.0, out=out)
+    if own is not None and own.any():
+        r_own = rows[own]
+        K_own = K[own].astype(float)
+        out[own] = _pearson3_sum(K_own, z_own, mean[r_own][:, None], sd[own][:, None], skew[own][:, None])
+        hm, hv, h3, hc = (np.asarray(a)[r_own] for a in harm)
+        h_sd = np.sqrt(np.maximum(hv, 0.0))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            h_skew = np.where(h_sd > 0, h3 / h_sd**3, 0.0)
+            sdx = sd[own][:, None]
+            rho = np.where((h_sd > 0) & (sdx > 0), hc / (sdx * h_sd), 1.0)
+        rho = np.clip(rho, -1.0, 1.0)
+        z_h = rho * z_own + np.sqrt(1.0 - rho * rho) * rng.standard_normal(z_own.shape)
+        Sh[r_own] = _pearson3_sum(K_own, z_h, hm, h_sd, h_skew)
     S[rows] = out
+    if Sh is not None:
+        if own is not None and (~own).any():
+            Sh[rows[~own]] = out[~own]
 
 
 def _gear_mix(rng, unit_of_cell, ustart, n_u, nz_c, D) -> np.ndarray:
@@ -1035,14 +1356,21 @@ class SeriesResult:
         return directory
 
 
-def _read_converted(converted, extra=()) -> tuple[pd.DataFrame, pd.DataFrame, dict, str, str, dict]:
+def _read_converted(converted, extra=()) -> tuple:
     """Records (only the columns series needs, plus ``extra`` ones where present), factor draws,
-    the conversion manifest and names. A Conversion in memory is returned as it is."""
+    the conversion manifest, names, input hashes and the :class:`RecordFactors` of records
+    converted by length class or with their own covariates (None when there are none). A
+    Conversion in memory is returned as it is, or as a records frame when it holds such records."""
     from calib.convert import Conversion
 
     wanted = list(REQUIRED) + list(OPTIONAL) + [c for c in extra if c not in REQUIRED + OPTIONAL]
     if isinstance(converted, Conversion):
-        return converted, converted.factor_draws, converted.manifest, "converted records", "factor draws", {}
+        rf = RecordFactors.from_conversion(converted)
+        records = converted
+        if rf is not None:
+            have = converted.store.columns
+            records = converted.record_columns([c for c in dict.fromkeys(wanted + rf.columns) if c in have])
+        return records, converted.factor_draws, converted.manifest, "converted records", "factor draws", {}, rf
     import pyarrow.parquet as pq
 
     from calib.factors import file_sha256
@@ -1055,27 +1383,25 @@ def _read_converted(converted, extra=()) -> tuple[pd.DataFrame, pd.DataFrame, di
                           for f in missing])
     rp, fp, mp = d / "records.parquet", d / "factor_draws.parquet", d / "manifest.json"
     try:
-        names = pq.read_schema(rp).names
-        records = pd.read_parquet(rp, columns=[c for c in wanted if c in names])
-        factor_draws = pd.read_parquet(fp)
         manifest = json.loads(mp.read_text())
     except (OSError, ValueError) as err:
         raise InputError([Problem(str(d), None, None, f"the converted files cannot be read ({err})",
                                   "convert again into a new directory", False)]) from None
-    if manifest.get("counts", {}).get("covariate_converted"):
-        raise InputError([Problem(str(mp), None, None,
-                                  f"{manifest['counts']['covariate_converted']} records were converted with their own "
-                                  "covariate values; series and trend do not handle them yet",
-                                  "convert with a factor set fitted without --covariate", False)])
-    if manifest.get("counts", {}).get("length_converted"):
-        raise InputError([Problem(str(mp), None, None,
-                                  f"{manifest['counts']['length_converted']} records were converted by length class; "
-                                  "series and trend do not handle length-converted records yet (each has its own "
-                                  "mix of class factors)",
-                                  "convert without --lengths using a factor set fitted without --length-bin", False)])
-    inputs = {name: {"path": str(p), "sha256": file_sha256(p)} for name, p in
-              (("records", rp), ("factor_draws", fp), ("manifest", mp))}
-    return records, factor_draws, manifest, str(rp), str(fp), inputs
+    rf = RecordFactors.from_directory(d, manifest)
+    if rf is not None:
+        wanted += [c for c in rf.columns if c not in wanted]
+    try:
+        names = pq.read_schema(rp).names
+        records = pd.read_parquet(rp, columns=[c for c in wanted if c in names])
+        factor_draws = pd.read_parquet(fp)
+    except (OSError, ValueError) as err:
+        raise InputError([Problem(str(d), None, None, f"the converted files cannot be read ({err})",
+                                  "convert again into a new directory", False)]) from None
+    files = [("records", rp), ("factor_draws", fp), ("manifest", mp)] + [
+        (f.split(".")[0], d / f) for f in ("length_factor_draws.parquet", "record_lengths.csv",
+                                           "covariate_term_draws.parquet") if rf is not None and (d / f).is_file()]
+    inputs = {name: {"path": str(p), "sha256": file_sha256(p)} for name, p in files}
+    return records, factor_draws, manifest, str(rp), str(fp), inputs, rf
 
 
 def series(converted, *, draws: int | None = None, seed: int = 0, interval: float | None = None,
@@ -1098,13 +1424,14 @@ def series(converted, *, draws: int | None = None, seed: int = 0, interval: floa
     """
     from calib.factors import software_versions, utc_timestamp
 
-    records, factor_draws, conv_manifest, where, draws_where, inputs = _read_converted(converted)
+    records, factor_draws, conv_manifest, where, draws_where, inputs, rf = _read_converted(converted)
     if interval is None:
         interval = float(conv_manifest.get("interval", 0.9))
     if not 0 < interval < 1:
         raise ValueError(f"interval must be between 0 and 1 (e.g. 0.9), not {interval}")
     sd = series_draws(records, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum, uncertainty=uncertainty,
-                      exact_max_hauls=exact_max_hauls, incomplete=incomplete, where=where, draws_where=draws_where)
+                      exact_max_hauls=exact_max_hauls, incomplete=incomplete, where=where, draws_where=draws_where,
+                      record_factors=rf)
     n_records = sd.settings["records"]
     units = sd.settings["effort_units"]
     del records
@@ -1123,6 +1450,10 @@ def series(converted, *, draws: int | None = None, seed: int = 0, interval: floa
     if counts.get("rejected"):
         notes.append(f"{counts['rejected']} records were rejected by convert and are in no series (see "
                      "rejected.csv); a gear's rejected hauls are missing from its strata and years")
+    if sd.settings["records_with_own_factor"]:
+        notes.append(f"{sd.settings['records_with_own_factor']} records converted "
+                     f"{' or '.join({'length': 'by length class', 'covariate': 'with their own covariate values'}[k] for k in sd.settings['own_factor_kinds'])}"
+                     ": each record's factor draws were rebuilt from the conversion's files, draw by draw")
     if sd.settings["strata_without_area"]:
         notes.append("strata without stratum_area: " + ", ".join(sd.settings["strata_without_area"])
                      + "; years with them are plain means over hauls (method haul_mean)")
@@ -1178,6 +1509,12 @@ The interval carries sampling error and conversion error together: for each
 posterior draw of the factors, the hauls are resampled (bootstrap within
 stratum and year) and converted with that draw. The raw, unconverted series
 is given beside it (raw_estimate, raw_lower, raw_upper) on the same resamples.
+
+Records converted by length class (convert --lengths) or with their own
+covariate values (factors fitted with --covariate) each have their own factor:
+it is rebuilt draw by draw from the files convert wrote beside the records
+(length_factor_draws.parquet and record_lengths.csv, or
+covariate_term_draws.parquet), so keep them in the conversion folder.
 
 Writes OUT/series.csv, OUT/series_draws.parquet (the paired draws) and
 OUT/manifest.json."""

@@ -374,7 +374,7 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
         raise ValueError(f"year_from ({year_from}) is after year_to ({year_to})")
     if not change_threshold > 0:
         raise ValueError(f"change_threshold must be above 0 (e.g. 0.1), not {change_threshold}")
-    records, factor_draws, conv_manifest, where, draws_where, inputs = _read_converted(
+    records, factor_draws, conv_manifest, where, draws_where, inputs, rf = _read_converted(
         converted, extra=HAUL_COLUMNS)
     if interval is None:
         interval = float(conv_manifest.get("interval", 0.9))
@@ -382,12 +382,12 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
         raise ValueError(f"interval must be between 0 and 1 (e.g. 0.9), not {interval}")
     sd = series_draws(records, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum,
                       uncertainty="both", exact_max_hauls=exact_max_hauls, incomplete=incomplete,
-                      where=where, draws_where=draws_where)
+                      where=where, draws_where=draws_where, record_factors=rf)
     # The same factor draws on the observed hauls (no resampling): b_d minus its slope isolates the
     # bootstrap's sampling error, which the residual term must not count a second time.
     sd_conv = series_draws(records, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum,
                            uncertainty="conversion", exact_max_hauls=exact_max_hauls, incomplete=incomplete,
-                           where=where, draws_where=draws_where)
+                           where=where, draws_where=draws_where, record_factors=rf)
     years = np.asarray(sd.years)
     in_window = np.ones(len(years), dtype=bool)
     if year_from is not None:
@@ -475,7 +475,7 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
         notes.append("the converted records have no haul_id column: no gear mix table")
     src_series, src_draws, src_notes = source_series(
         records, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum, exact_max_hauls=exact_max_hauls,
-        incomplete=incomplete, interval=interval, where=where, draws_where=draws_where)
+        incomplete=incomplete, interval=interval, where=where, draws_where=draws_where, record_factors=rf)
     notes += src_notes
     agreement = source_agreement(src_draws, year_from=year_from, year_to=year_to, interval=interval)
     del records
@@ -483,6 +483,9 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
     if counts.get("rejected"):
         notes.append(f"{counts['rejected']} records were rejected by convert and are in no series or trend "
                      "(see rejected.csv)")
+    if sd.settings.get("records_with_own_factor"):
+        notes.append(f"{sd.settings['records_with_own_factor']} records have their own factor (converted by length "
+                     "class or with their own covariate values), rebuilt draw by draw from the conversion's files")
     if len(sd.settings.get("effort_units", [])) > 1:
         notes.append("effort units differ between gears: the raw series mixes them, the harmonized series is in "
                      "reference-gear units")
@@ -608,7 +611,7 @@ def _records_frame(records, columns) -> pd.DataFrame:
 
 def source_series(records, factor_draws: pd.DataFrame, *, draws=None, seed: int = 0, by_stratum: bool = True,
                   exact_max_hauls: int = EXACT_MAX_HAULS, incomplete: str = "flag", interval: float = 0.9,
-                  where: str = "records", draws_where: str = "factor_draws"):
+                  where: str = "records", draws_where: str = "factor_draws", record_factors=None):
     """The harmonized series of each source (partner dataset) on its own.
 
     Each source's records go through :func:`calib.series.series_draws` (the same estimator as
@@ -619,7 +622,8 @@ def source_series(records, factor_draws: pd.DataFrame, *, draws=None, seed: int 
     Returns (table with ``SOURCE_SERIES_COLUMNS`` for the combined 'all' stratum, dict source ->
     SeriesDraws, notes). Empty with a note when the records have no source column or one source.
     """
-    frame = _records_frame(records, list(REQUIRED) + list(OPTIONAL) + ["source"])
+    frame = _records_frame(records, list(REQUIRED) + list(OPTIONAL) + ["source"]
+                           + (record_factors.columns if record_factors is not None else []))
     empty = pd.DataFrame(columns=SOURCE_SERIES_COLUMNS)
     if "source" not in frame.columns:
         return empty, {}, ["the converted records have no source column: no per-source series"]
@@ -634,7 +638,8 @@ def source_series(records, factor_draws: pd.DataFrame, *, draws=None, seed: int 
         try:
             sd = series_draws(sub, factor_draws, draws=draws, seed=seed, by_stratum=by_stratum, uncertainty="both",
                               exact_max_hauls=exact_max_hauls, incomplete=incomplete,
-                              where=f"{where} (source {label})", draws_where=draws_where, stream=k + 1)
+                              where=f"{where} (source {label})", draws_where=draws_where, stream=k + 1,
+                              record_factors=record_factors)
         except InputError as err:
             notes.append(f"source {label}: no series ({err.problems[0].message})")
             continue
@@ -766,7 +771,8 @@ units, from the same paired draws as `calib series`). The harmonized interval
 carries conversion error, sampling error and the year-to-year scatter around
 the trend; the artifact (raw minus harmonized slope) is computed draw by draw
 on the paired series. Changes are percent over the period:
-raw change = harmonized change x artifact.
+raw change = harmonized change x artifact. Records converted by length class
+or with their own covariate values are taken as `calib series` takes them.
 
 """ + textwrap.fill("Verdict rule: " + VERDICT_RULE, 78) + """
 

@@ -11,6 +11,7 @@ log_kappa_mean (the constant model on the same data: 2 divergences); with 3 spec
 
 from __future__ import annotations
 
+import json
 import numpy as np
 import pandas as pd
 import pytest
@@ -245,14 +246,76 @@ def test_covariate_with_length_bin_is_a_usage_error(tmp_path, capsys):
     assert "--covariate and --length-bin" in capsys.readouterr().err
 
 
-def test_series_refuses_covariate_converted_records(effect_fit, tmp_path):
-    # Each such record may have its own factor, so series_draws has no single species x gear draw
-    # for it: series says so instead of pairing records with the wrong draws.
+def test_series_and_trend_rebuild_each_records_covariate_factor(effect_fit, tmp_path, capsys):
+    """calib convert, series and trend (the command line) on survey hauls converted with their own
+    day/night level and depth: the reference otter until 2018, the beam from 2019. Each beam
+    record's draws, rebuilt by series from covariate_term_draws.parquet, must (a) give back the
+    median and interval convert wrote, (b) equal exp(-(theta + offset[level] + slope (depth -
+    centre))) taken from posterior.nc draw by draw, and (c) give series.csv's estimate: the median
+    over draws of the year's mean of cpue x m[d], every record at the same draw d."""
+    from calib.cli import main
+    from calib.series import RecordFactors
+
+    study, fs, tmp = effect_fit
+    hauls = study.hauls.drop(columns=["pair_id"])
+    group = hauls["site"].str[1:].astype(int)
+    year = 2013 + group % 8
+    hauls["date"] = year.astype(str) + hauls["date"].str[4:]
+    keep = ((hauls["gear"] == "otter") & (year < 2019)) | ((hauls["gear"] == "beam") & (year >= 2019))
+    hauls = hauls[keep]
+    hauls.to_csv(tmp_path / "survey_hauls.csv", index=False)
+    catches = pd.read_csv(tmp / "catches.csv")
+    catches[catches["haul_id"].isin(hauls["haul_id"])].to_csv(tmp_path / "survey_catches.csv", index=False)
+    conv, ser, tr = tmp_path / "conv", tmp_path / "series", tmp_path / "trend"
+    assert main(["convert", "--factors", str(tmp / "factors"), "--hauls", str(tmp_path / "survey_hauls.csv"),
+                 "--catches", str(tmp_path / "survey_catches.csv"), "--out", str(conv)]) == 0
+    assert main(["series", "--converted", str(conv), "--out", str(ser)]) == 0
+    assert main(["trend", "--converted", str(conv), "--out", str(tr)]) == 0
+    capsys.readouterr()
+
+    manifest = json.loads((conv / "manifest.json").read_text())
+    records = pd.read_csv(conv / "records.csv", dtype={"haul_id": str})
+    beam = np.flatnonzero((records["gear"] == "beam").to_numpy())
+    assert manifest["counts"]["covariate_converted"] == len(beam) > 50
+    rf = RecordFactors.from_directory(conv, manifest)
+    D = manifest["draws"]["used"]
+    fn, has = rf.parts[0].bind(records, beam, np.arange(D))
+    assert has.all()
+    M = fn(np.arange(len(beam)))
+    cpue = (records["count"] / records["effort"]).to_numpy()
+    q = np.quantile(cpue[beam, None] * M, [0.05, 0.5, 0.95], axis=1).T
+    want = records.iloc[beam][["cpue_ref_lower", "cpue_ref_median", "cpue_ref_upper"]].to_numpy(dtype=float)
+    np.testing.assert_allclose(q, want, rtol=2e-5, atol=1e-12)  # (a); records.csv: 6 significant digits
+    post = fs.idata.posterior
+    centre = fs.manifest["covariates"]["depth_m"]["centre"]
+    for k in range(0, len(beam), 17):  # (b), from the posterior itself
+        r = records.iloc[beam[k]]
+        th = (post["theta"].sel(gear="beam", species=r["species"])
+              + post["offset_day_night"].sel(gear="beam", level_day_night=r["day_night"])
+              + post["slope"].sel(gear="beam", numeric="depth_m") * (r["depth_m"] - centre))
+        np.testing.assert_allclose(M[k], np.exp(-th.values.ravel()), rtol=1e-9)
+    full = np.ones((len(records), D))
+    full[beam] = M
+    conv_draws = cpue[:, None] * full
+    s = pd.read_csv(ser / "series.csv")
+    assert len(s) == records.groupby(["species", "year"]).ngroups
+    for row in s.itertuples():  # (c)
+        sel = ((records["species"] == row.species) & (records["year"] == row.year)).to_numpy()
+        assert row.estimate == pytest.approx(np.median(conv_draws[sel].mean(axis=0)), rel=2e-5)
+    t = pd.read_csv(tr / "trend.csv")
+    assert sorted(t["species"]) == sorted(records["species"].unique())
+    assert "covariate_term_draws" in json.loads((tr / "manifest.json").read_text())["inputs"]
+    # a conversion folder without the term draws (written before they were stored) is refused
+    import shutil
+
     from calib.convert import convert
     from calib.errors import InputError
     from calib.series import series
 
-    _, _, tmp = effect_fit
-    convert(tmp / "factors", tmp / "hauls.csv", tmp / "catches.csv").save(tmp_path / "converted")
-    with pytest.raises(InputError, match="covariate values"):
-        series(tmp_path / "converted")
+    in_memory = convert(tmp / "factors", tmp_path / "survey_hauls.csv", tmp_path / "survey_catches.csv")
+    np.testing.assert_allclose(series(in_memory, seed=3).draws.value, series(conv, seed=3).draws.value, rtol=1e-9)
+
+    shutil.copytree(conv, tmp_path / "old")
+    (tmp_path / "old" / "covariate_term_draws.parquet").unlink()
+    with pytest.raises(InputError, match="convert again"):
+        series(tmp_path / "old")

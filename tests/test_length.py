@@ -300,13 +300,13 @@ def test_convert_nearest_class_flags(tmp_path):
     assert cv.n_in == cv.n_converted + cv.n_rejected
     out = cv.save(tmp_path / "conv")
     assert (out / "length_factor_draws.parquet").is_file() and (out / "record_lengths.csv").is_file()
-    # series cannot use them yet and says so, from memory and from the directory
+    # series rebuilds each record's draws from these files: the same series from memory and from
+    # the directory (tests/test_series_record_factors.py checks the values)
     from calib.series import series
 
-    with pytest.raises(ValueError, match="length"):
-        series(cv)
-    with pytest.raises(InputError, match="length class"):
-        series(out)
+    a, b = series(cv, seed=1), series(out, seed=1)
+    np.testing.assert_allclose(a.draws.value, b.draws.value, rtol=1e-6)  # record_lengths.csv: 6 digits
+    assert a.table["n_domain_flagged"].iloc[0] == 1  # S2, converted with the nearest class
 
 
 def test_convert_rejects_fail_classes_and_coarse_survey_lengths(tmp_path):
