@@ -118,7 +118,7 @@ def main(argv=None) -> int:
     print(f"ordinary:   {t1 - t0:6.1f} s, peak {peak_gib():.2f} GiB, {a.settings['units_moment_matched']} "
           f"moment-matched units of {a.settings['units_moment_matched'] + a.settings['units_exact']}")
     t0 = time.perf_counter()
-    b = series_draws(rec, fd_ref, seed=1, record_factors=rf)
+    series_draws(rec, fd_ref, seed=1, record_factors=rf)
     t1 = time.perf_counter()
     print(f"per record: {t1 - t0:6.1f} s, peak {peak_gib():.2f} GiB")
     return 0

@@ -691,8 +691,8 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
     unconverged = unconverged[keep].astype(float)
     del counts, sums, n_all
 
-    def cell_of_records() -> np.ndarray:
-        """Cell index of every record (a record-sized lookup, made only when needed)."""
+    def cell_of_records(key: np.ndarray) -> np.ndarray:
+        """Cell index of every record from its key (a record-sized lookup, made only when needed)."""
         if isinstance(keep, slice):
             return key
         lut = np.full(n_keys, -1, dtype=np.int64)
@@ -705,7 +705,7 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
     fk_c = codes.f_row[c_sp, f_c]
     if fk_c.min(initial=0) < 0:
         c = int(np.flatnonzero(fk_c < 0)[0])
-        rows = np.flatnonzero(cell_of_records() == c)
+        rows = np.flatnonzero(cell_of_records(key) == c)
         raise _problem(where, rows[:1], "factor_gear",
                        f"no factor draws for species '{species[c_sp[c]]}' with gear '{codes.f_gear[f_c[c]]}' "
                        f"({len(rows)} records)",
@@ -734,7 +734,7 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
     rm_c = rm_fk[fk_c]
     rm_any = mult is not None and bool(rm_c.any())
     if rm_any:
-        cor = cell_of_records()
+        cor = cell_of_records(key)
         rsel = np.flatnonzero(rm_rec & (cpue > 0))
         rcell = cor[rsel]
         o = np.argsort(rcell, kind="stable")
@@ -743,7 +743,7 @@ def series_draws(records, factor_draws: pd.DataFrame, *, draws: int | None = Non
         del cor, rsel, rcell, o
     S_exact = Sh_exact = None
     if resample and exact_c.any():
-        S_exact, Sh_exact = _exact_sums(rng, cpue, cell_of_records(), unit_of_cell, ustart, n_u, nz_c, exact_c, D,
+        S_exact, Sh_exact = _exact_sums(rng, cpue, cell_of_records(key), unit_of_cell, ustart, n_u, nz_c, exact_c, D,
                                         mult=mult if rm_any else None, rm_c=rm_c)
     del key
     F_use = F if uncertainty != "sampling" else np.repeat(np.median(F, axis=1)[:, None], D, axis=1)

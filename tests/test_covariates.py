@@ -33,7 +33,7 @@ def _study(night_offset: float, depth_slope: float, seed: int):
     return simulate_calibration(
         n_groups=N_GROUPS, gears=["otter", "beam"], theta={"beam": [-0.4, 0.3, 0.0]},
         log_density_mean=[2.5, 2.2, 1.8], kappa=3.0, effort={"otter": (0.8, 1.2), "beam": (0.8, 1.2)},
-        seed=seed, theta_offset=offset, species=["pinfish", "spot", "hogchoker"],
+        seed=seed, theta_offset=offset, species=["pinfish", "mummichog", "hogchoker"],
         group_covariates=pd.DataFrame({"day_night": day_night, "depth_m": depth}))
 
 
@@ -135,7 +135,7 @@ def test_factor_table_rows_per_level_and_manifest(effect_fit):
     t = fs.table
     cat = t[t["covariate"] == "day_night"]
     assert sorted(zip(cat["species"], cat["level"])) == sorted(
-        [(s, lv) for s in ("pinfish", "spot", "hogchoker") for lv in ("day", "night")])
+        [(s, lv) for s in ("pinfish", "mummichog", "hogchoker") for lv in ("day", "night")])
     assert set(cat["gear"]) == {"beam"}
     num = t[t["covariate"] == "depth_m"]
     assert len(num) == 3 * 3  # species x the 10th, 50th, 90th percentiles
@@ -149,7 +149,7 @@ def test_factor_table_rows_per_level_and_manifest(effect_fit):
         list(np.percentile(depth, [10, 50, 90])), rel=1e-5)
     assert set(t["status"]) <= {"ok", "warn", "fail"}
     # night factor / day factor = exp(-offset): the two rows come from the same draws
-    for sp in ("pinfish", "spot", "hogchoker"):
+    for sp in ("pinfish", "mummichog", "hogchoker"):
         day = cat[(cat["species"] == sp) & (cat["level"] == "day")]["factor_median"].iloc[0]
         night = cat[(cat["species"] == sp) & (cat["level"] == "night")]["factor_median"].iloc[0]
         assert 0.3 < night / day < 0.75  # truth exp(-0.7) = 0.50

@@ -21,7 +21,7 @@ from calib.simulate import LengthSpec, logistic_retention, simulate_calibration
 from calib.tables import complete_zeros, load_tables
 
 GEARS = ["seine", "trawl"]
-SPECIES = ["pinfish", "spot"]
+SPECIES = ["pinfish", "mummichog"]
 # Retention curves (l50, sr) in mm: the usual logistic selection curve (Millar & Fryer 1999,
 # Reviews in Fish Biology and Fisheries 9, "Estimating the size-selection curves of towed gears,
 # traps, nets and hooks"). The seine keeps nearly everything above 25 mm; the trawl lets small fish
@@ -181,7 +181,7 @@ def test_length_factor_set_layout(length_fit):
     m = json.loads((out / "manifest.json").read_text())
     L = m["lengths"]
     assert L["bin_mm"] == 20.0 and set(L["calibrated_range_mm"]) == set(SPECIES)
-    assert L["input_resolution_mm"] == {"pinfish": 1.0, "spot": 1.0}
+    assert L["input_resolution_mm"] == {"pinfish": 1.0, "mummichog": 1.0}
     for sp in SPECIES:
         rows = fs.table[fs.table.species == sp]
         lo, hi = L["calibrated_range_mm"][sp]
@@ -440,12 +440,12 @@ def test_species_never_measured_gets_no_classes(tmp_path):
     rows = [("P1-A", "pinfish", 41, 25), ("P1-B", "pinfish", 43, 40), ("P2-A", "pinfish", 42, 10),
             ("P2-B", "pinfish", 44, 8)]
     catches = [("P1-A", "pinfish", 100), ("P1-B", "pinfish", 40), ("P2-A", "pinfish", 10), ("P2-B", "pinfish", 8),
-               ("P1-A", "spot", 3), ("P2-B", "spot", 5)]
+               ("P1-A", "mummichog", 3), ("P2-B", "mummichog", 5)]
     t = _tiny_tables(tmp_path, rows, catches)
     lc = build_length_cells(t.hauls, complete_zeros(t), t.lengths, "A", 10.0)
-    assert lc.report["species_without_range"] == ["spot"]
-    assert "spot" not in lc.classes and set(lc.stratum_frame()["species"]) == {"pinfish"}
-    assert lc.report["no_lengths_by_species"] == {"spot": 2} and lc.report["no_lengths_fish"] == 8
+    assert lc.report["species_without_range"] == ["mummichog"]
+    assert "mummichog" not in lc.classes and set(lc.stratum_frame()["species"]) == {"pinfish"}
+    assert lc.report["no_lengths_by_species"] == {"mummichog": 2} and lc.report["no_lengths_fish"] == 8
 
 
 # ----------------------------------------------------------------------------- model pieces
