@@ -229,14 +229,15 @@ def fused_logp_grad(cells):
 
 
 def time_call(fn, repeats: int = 20, batches: int = 15) -> float:
-    """Seconds per call: the fastest of ``batches`` batches (robust to other processes' load)."""
+    """CPU seconds per call (this process's CPU time, so other processes' load counts little): the
+    fastest of ``batches`` batches."""
     fn()
     best = math.inf
     for _ in range(batches):
-        start = time.perf_counter()
+        start = time.process_time()
         for _ in range(repeats):
             fn()
-        best = min(best, (time.perf_counter() - start) / repeats)
+        best = min(best, (time.process_time() - start) / repeats)
     return best
 
 
