@@ -3,15 +3,15 @@
 One run, the same simulated data for every contender (two gears, gamma patchiness, so the
 beta-binomial split is the true model):
 
-* size "species":  12 species x 150 pairs, catches aggregated over length;
-* size "length":   12 species x 150 pairs x 20 length classes, emulated as 20 cells per pair
-  whose expected catch is the pair's catch spread over the classes (the constant-factor model
-  fitted to length cells, the shape a length-resolved study gives the sampler).
+* size "species":  12 species x 150 pairs (``--pairs``), catches aggregated over length, fitted
+  with calib.model (constant factors);
+* size "length":   12 species x 150 pairs x about 20 length classes of 10 mm, fitted with
+  calib.length_model (P-spline factor by length), the other gear letting small fish through.
 
 Contenders, all 2 chains x (1,000 tune + 1,000 draws) unless --draws/--tune say otherwise:
 
 * ``plain``: the same model written the obvious way -- ``pm.BetaBinomial`` on every cell,
-  non-centred hierarchy, PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains
+  non-centred hierarchy (at the length size the P-spline in its textbook non-centred form), PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains
   one after the other);
 * ``calib``: ``calib.model.build_model`` + ``calib.model.sample`` as ``calib fit`` runs them
   (masked Dirichlet-multinomial log-density, per-entry centring, chains in parallel);
@@ -26,6 +26,8 @@ density and gradient, and the gradient evaluations per effective draw.
 
     python benchmarks/fit_speed.py                # both sizes (tens of minutes on 2 cores)
     python benchmarks/fit_speed.py --size species --draws 500 --tune 500   # quicker look
+    python benchmarks/fit_speed.py --size length --pairs 20 --draws 500 --tune 500 --skip-nutpie
+        # the length size as measured in docs/performance.md (plain takes hours at 150 pairs)
 """
 
 from __future__ import annotations
