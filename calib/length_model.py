@@ -149,8 +149,8 @@ def build_length_model(lc: LengthCells, spec: LengthModelSpec = LengthModelSpec(
     """Build the PyMC length model for :class:`calib.cells.LengthCells` (see module docstring).
 
     Coordinates: gear, factor_gear, species, length (class lower bounds, mm), stratum (species x
-    class), basis, cell, combo, pool. Data containers: counts, present, weight (cell, gear),
-    cell_stratum, cell_combo (cell). Returns a ``pm.Model``; sample it with
+    class), basis, cell, combo, pool. Data containers: counts, present, weight, log_weight (cell, gear),
+    cell_stratum, cell_combo, split_constant (cell). Returns a ``pm.Model``; sample it with
     :func:`calib.model.sample`.
     """
     import pymc as pm

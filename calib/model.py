@@ -24,7 +24,9 @@ posterior). ``pooling="none"`` gives every species its own vague priors (``theta
 ``log_kappa``; no borrowing).
 
 Public: :class:`Priors`, :class:`ModelSpec`, :func:`build_model`, :func:`set_cells`,
-:func:`sample`, :func:`cell_log_density`, :func:`draw_split`.
+:func:`sample`, :func:`cell_log_density`, :func:`draw_split`; for other models built on the same
+split: :func:`split_likelihood`, :func:`split_constant`, :func:`log_weight`, :func:`gather_rows`,
+:func:`gather_pairs`.
 
 Names in the InferenceData: posterior ``theta`` (gear, species; reference row 0),
 ``log_kappa`` (combo, species; absent with ``overdispersion="none"``), the hyper-parameters
@@ -32,7 +34,8 @@ Names in the InferenceData: posterior ``theta`` (gear, species; reference row 0)
 ``log_kappa_sd`` and the sampler's variables ``theta_raw`` / ``theta_free``,
 ``z_log_kappa``; log_likelihood ``split`` (cell); prior: every free variable and
 deterministic (``theta`` included); observed_data ``split`` (cell, gear); constant_data the
-data containers (counts, present, weight, cell_species, cell_combo, species_pool, centred).
+data containers (counts, present, weight, cell_species, cell_combo, species_pool, centred, and
+log_weight, split_constant: the parameter-free terms of the log-density, computed once).
 """
 
 from __future__ import annotations
@@ -484,8 +487,8 @@ def build_model(cells: Cells, spec: ModelSpec = ModelSpec()):
 
     Coordinates: gear (all gears, reference first), factor_gear (non-reference gears),
     species, cell, combo (gear combinations of the groups), pool (species pooling groups).
-    Data containers (swap with :func:`set_cells`): counts, present, weight (cell, gear),
-    cell_species, cell_combo (cell), species_pool (species).
+    Data containers (swap with :func:`set_cells`): counts, present, weight, log_weight (cell, gear),
+    cell_species, cell_combo, split_constant (cell), species_pool (species).
 
     Returns a ``pm.Model``; sample it with :func:`sample`.
     """
