@@ -11,8 +11,8 @@ beta-binomial split is the true model):
 Contenders, all 2 chains x (1,000 tune + 1,000 draws) unless --draws/--tune say otherwise:
 
 * ``plain``: the same model written the obvious way -- ``pm.BetaBinomial`` on every cell,
-  non-centred hierarchy (at the length size the P-spline in its textbook non-centred form), PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains
-  one after the other);
+  non-centred hierarchy (at the length size the P-spline in its textbook non-centred form),
+  PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains one after the other);
 * ``calib``: ``calib.model.build_model`` + ``calib.model.sample`` as ``calib fit`` runs them
   (masked Dirichlet-multinomial log-density, per-entry centring, chains in parallel);
 * ``calib+nutpie``: the same model sampled by nutpie (numba backend).
