@@ -3,16 +3,16 @@
 One run, the same simulated data for every contender (two gears, gamma patchiness, so the
 beta-binomial split is the true model):
 
-* size "species":  12 species x 150 pairs, catches aggregated over length;
-* size "length":   12 species x 150 pairs x 20 length classes, emulated as 20 cells per pair
-  whose expected catch is the pair's catch spread over the classes (the constant-factor model
-  fitted to length cells, the shape a length-resolved study gives the sampler).
+* size "species":  12 species x 150 pairs (``--pairs``), catches aggregated over length, fitted
+  with calib.model (constant factors);
+* size "length":   12 species x 150 pairs x about 20 length classes of 10 mm, fitted with
+  calib.length_model (P-spline factor by length), the other gear letting small fish through.
 
 Contenders, all 2 chains x (1,000 tune + 1,000 draws) unless --draws/--tune say otherwise:
 
 * ``plain``: the same model written the obvious way -- ``pm.BetaBinomial`` on every cell,
-  non-centred hierarchy, PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains
-  one after the other);
+  non-centred hierarchy (at the length size the P-spline in its textbook non-centred form),
+  PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains one after the other);
 * ``calib``: ``calib.model.build_model`` + ``calib.model.sample`` as ``calib fit`` runs them
   (masked Dirichlet-multinomial log-density, per-entry centring, chains in parallel);
 * ``calib+nutpie``: the same model sampled by nutpie (numba backend).
@@ -26,6 +26,8 @@ density and gradient, and the gradient evaluations per effective draw.
 
     python benchmarks/fit_speed.py                # both sizes (tens of minutes on 2 cores)
     python benchmarks/fit_speed.py --size species --draws 500 --tune 500   # quicker look
+    python benchmarks/fit_speed.py --size length --pairs 20 --draws 500 --tune 500 --skip-nutpie
+        # the length size as measured in docs/performance.md (plain takes hours at 150 pairs)
 """
 
 from __future__ import annotations
@@ -37,7 +39,8 @@ import time
 
 import numpy as np
 
-PARAMS = ("theta", "mu", "tau", "log_kappa_mean", "log_kappa_sd")
+PARAMS = {"species": ("theta", "mu", "tau", "log_kappa_mean", "log_kappa_sd"),
+          "length": ("theta_class", "mu", "tau", "sigma_rw", "log_kappa_mean", "log_kappa_sd")}
 
 
 def simulated_cells(n_species: int, n_pairs: int, n_classes: int, seed: int):
@@ -53,6 +56,82 @@ def simulated_cells(n_species: int, n_pairs: int, n_classes: int, seed: int):
         effort={"ref": (0.8, 1.2), "other": (0.8, 1.2)}, seed=seed,
         species=[f"sp{j:02d}" for j in range(n_species)])
     return study.to_cells()
+
+
+def simulated_length_cells(n_species: int, n_pairs: int, seed: int, bin_mm: float = 10.0):
+    """LengthCells of a two-gear study with length-dependent retention (about 20 classes per species).
+
+    Lengths lognormal (median 100 to 130 mm, cv 0.25), every fish measured, 10-mm classes, a
+    species' calibrated range from its first to its last class with at least 5 measured fish; the
+    other gear lets small fish through (logistic retention, l50 60 mm, selection range 30 mm), so
+    the factor changes with length. Each length class's split is exactly beta-binomial
+    (patchiness drawn per haul x species x class).
+    """
+    import tempfile
+    from pathlib import Path
+
+    from calib.cells import build_length_cells
+    from calib.simulate import LengthSpec, simulate_calibration
+    from calib.tables import complete_zeros, load_tables
+
+    rng = np.random.default_rng(seed)
+    species = [f"sp{j:02d}" for j in range(n_species)]
+    spec = LengthSpec(median_mm=list(rng.uniform(100, 130, n_species)), cv=0.25, n_measured=1_000_000,
+                      bin_mm=int(bin_mm), patchiness_level="length_class", retention={"other": (60, 30)})
+    study = simulate_calibration(
+        n_groups=n_pairs, gears=["ref", "other"], theta={"other": list(rng.normal(0.0, 0.6, n_species))},
+        log_density_mean=list(rng.uniform(2.5, 4.0, n_species)), kappa=2.0, seed=seed, species=species,
+        lengths=spec, effort={"ref": (0.8, 1.2), "other": (0.8, 1.2)})
+    with tempfile.TemporaryDirectory() as d:
+        paths = []
+        for name in ("hauls", "catches", "lengths"):
+            path = Path(d) / f"{name}.csv"
+            getattr(study, name).to_csv(path, index=False)
+            paths.append(path)
+        tables = load_tables(*paths)
+        return build_length_cells(tables.hauls, complete_zeros(tables), tables.lengths, "ref", bin_mm,
+                                  min_class_fish=5)
+
+
+def plain_length_model(lc):
+    """The length model for two gears written the obvious way: the P-spline of
+    calib.length_model in its non-centred textbook form (level + sigma x centred random walk), the
+    same priors and basis, pm.BetaBinomial on every cell."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    from calib.length_model import LengthModelSpec, _basis_blocks
+
+    spec = LengthModelSpec()
+    p = spec.priors
+    cells = lc.cells
+    if not np.asarray(cells.present).all():
+        raise ValueError("the plain length model assumes both gears in every cell")
+    basis, n_basis, k_max = _basis_blocks(lc, spec)
+    mask = (np.arange(k_max)[None, :] < n_basis[:, None]).astype(float)
+    y = np.asarray(cells.counts)[:, 1]
+    n = np.asarray(cells.counts).sum(axis=1)
+    w = np.asarray(cells.weight)
+    stratum = np.asarray(cells.cell_species)
+    sp_of_stratum = np.asarray(lc.stratum_species)
+    n_sp = len(lc.species)
+    with pm.Model(coords={"species": list(lc.species), "stratum": list(cells.species)}) as model:
+        mu = pm.Normal("mu", 0.0, p.theta_mu_sd)
+        tau = pm.HalfNormal("tau", p.theta_tau_sd)
+        sigma = pm.HalfNormal("sigma_rw", spec.rw_sd)
+        z_level = pm.Normal("z_level", 0.0, 1.0, dims="species")
+        z_step = pm.Normal("z_step", 0.0, 1.0, shape=(n_sp, k_max - 1))
+        walk = pt.concatenate([pt.zeros((n_sp, 1)), pt.cumsum(z_step, axis=1)], axis=1) * mask
+        centre = walk.sum(axis=1, keepdims=True) / n_basis[:, None]
+        beta = (mu + tau * z_level)[:, None] + sigma * (walk - centre) * mask
+        theta = pm.Deterministic("theta_class", (beta[sp_of_stratum] * basis).sum(axis=1), dims="stratum")
+        lk_mean = pm.Normal("log_kappa_mean", p.log_kappa_loc_mean, p.log_kappa_loc_sd)
+        lk_sd = pm.HalfNormal("log_kappa_sd", p.log_kappa_spread_sd)
+        zk = pm.Normal("z_log_kappa", 0.0, 1.0, dims="species")
+        kappa = pm.math.exp(lk_mean + lk_sd * zk)[sp_of_stratum[stratum]]
+        pm.BetaBinomial("y", n=n, alpha=kappa * w[:, 1] * pm.math.exp(theta[stratum]), beta=kappa * w[:, 0],
+                        observed=y)
+    return model
 
 
 def plain_model(cells):
@@ -80,13 +159,13 @@ def plain_model(cells):
     return model
 
 
-def summary(idata, kind: str):
+def summary(idata, kind: str, params=PARAMS["species"]):
     """Per-parameter posterior medians, MCSE of the median, bulk ESS and R-hat, flattened."""
     import arviz as az
 
     post = idata.posterior
     out = {}
-    for name in PARAMS:
+    for name in params:
         if name not in post:
             continue
         da = post[name]
@@ -106,7 +185,7 @@ def summary(idata, kind: str):
     return out
 
 
-def run(label, make_model, sample, kind):
+def run(label, make_model, sample, kind, params=PARAMS["species"]):
     rows = []
     model = None
     for phase in ("cold", "warm"):
@@ -115,7 +194,7 @@ def run(label, make_model, sample, kind):
             model = make_model()
         idata = sample(model)
         wall = time.perf_counter() - start
-        stats = summary(idata, kind)
+        stats = summary(idata, kind, params)
         ess = min(v[2] for v in stats.values())
         rhat = max(v[3] for v in stats.values())
         steps = float(idata.sample_stats["n_steps"].sum()) if "n_steps" in idata.sample_stats else float("nan")
@@ -151,12 +230,17 @@ def fused_logp_grad(cells):
     return f
 
 
-def time_call(fn, repeats: int = 200) -> float:
+def time_call(fn, repeats: int = 20, batches: int = 15) -> float:
+    """CPU seconds per call (this process's CPU time, so other processes' load counts little): the
+    fastest of ``batches`` batches."""
     fn()
-    start = time.perf_counter()
-    for _ in range(repeats):
-        fn()
-    return (time.perf_counter() - start) / repeats
+    best = math.inf
+    for _ in range(batches):
+        start = time.process_time()
+        for _ in range(repeats):
+            fn()
+        best = min(best, (time.process_time() - start) / repeats)
+    return best
 
 
 def gradient_costs(cells, calib_model, plain):
@@ -193,6 +277,7 @@ def main(argv=None) -> int:
     ap.add_argument("--tune", type=int, default=1000)
     ap.add_argument("--seed", type=int, default=7)
     ap.add_argument("--skip-nutpie", action="store_true")
+    ap.add_argument("--pairs", type=int, default=150, help="calibration pairs per study (default 150)")
     args = ap.parse_args(argv)
 
     import os
@@ -205,13 +290,25 @@ def main(argv=None) -> int:
     print(f"calib fit speed; pymc {pymc.__version__}, pytensor {pytensor.__version__}, "
           f"{len(os.sched_getaffinity(0))} CPUs, {time.strftime('%Y-%m-%d %H:%M')}; "
           f"2 chains x ({args.tune} tune + {args.draws} draws)")
-    sizes = {"species": 1, "length": 20}
-    if args.size != "both":
-        sizes = {args.size: sizes[args.size]}
-    for size, classes in sizes.items():
-        cells = simulated_cells(12, 150, classes, args.seed)
-        print(f"\n== size '{size}': 12 species x 150 pairs x {classes} length class(es): {cells.n_cells} cells "
-              "with a non-zero total")
+    from calib import length_model as lm
+
+    sizes = ("species", "length") if args.size == "both" else (args.size,)
+    for size in sizes:
+        if size == "species":
+            cells = simulated_cells(12, args.pairs, 1, args.seed)
+            print(f"\n== size 'species': 12 species x {args.pairs} pairs, aggregated over length: {cells.n_cells} "
+                  "cells with a non-zero total")
+            make_plain, make_calib = (lambda: plain_model(cells)), (lambda: cm.build_model(cells, cm.ModelSpec()))
+        else:
+            lc = simulated_length_cells(12, args.pairs, args.seed)
+            cells = lc.cells
+            per_sp = np.bincount(lc.stratum_species)
+            print(f"\n== size 'length': 12 species x {args.pairs} pairs x {per_sp.min()} to {per_sp.max()} length "
+                  f"classes ({lc.bin_mm:g} mm; {len(lc.stratum_species)} species x classes): {cells.n_cells} cells "
+                  "with a non-zero total")
+            make_plain = lambda: plain_length_model(lc)  # noqa: E731
+            make_calib = lambda: lm.build_length_model(lc, lm.LengthModelSpec())  # noqa: E731
+        params = PARAMS[size]
         settings = dict(draws=args.draws, tune=args.tune, chains=2, seed=args.seed, progressbar=False,
                         prior_draws=0, log_likelihood=False)
 
@@ -220,13 +317,12 @@ def main(argv=None) -> int:
                 return pymc.sample(draws=args.draws, tune=args.tune, chains=2, random_seed=args.seed,
                                    progressbar=False, target_accept=0.9, compute_convergence_checks=False)
 
-        plain_rows, plain = run("plain", lambda: plain_model(cells), sample_plain, "plain")
-        calib_rows, calib_model = run("calib", lambda: cm.build_model(cells, cm.ModelSpec()),
-                                      lambda m: cm.sample(m, **settings), "calib")
+        plain_rows, plain = run("plain", make_plain, sample_plain, "plain", params)
+        calib_rows, calib_model = run("calib", make_calib, lambda m: cm.sample(m, **settings), "calib", params)
         rows = plain_rows + calib_rows
         if not args.skip_nutpie:
-            nut_rows, _ = run("calib+nutpie", lambda: cm.build_model(cells, cm.ModelSpec()),
-                              lambda m: cm.sample(m, sampler="nutpie", **settings), "calib")
+            nut_rows, _ = run("calib+nutpie", make_calib, lambda m: cm.sample(m, sampler="nutpie", **settings),
+                              "calib", params)
             rows += nut_rows
         base = {r["phase"]: r for r in plain_rows}
         print("\n  ratios to plain (same phase):   wall time   ESS per second")
@@ -245,7 +341,7 @@ def main(argv=None) -> int:
         floor = costs["fused numpy"] * warm["grads_per_ess"]
         print(f"\n  limit: calib warm spends {1e3 * warm['wall'] / warm['ess']:.2f} ms per effective draw; "
               f"fused cost x gradients per effective draw = {1e3 * floor:.3f} ms "
-              f"({warm['wall'] / warm['ess'] / floor:.0f} x the floor)")
+              f"({warm['wall'] / warm['ess'] / floor:.1f} x the floor)")
     return 0
 
 

@@ -38,8 +38,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from calib.cells import Cells, CovariateCells
-from calib.model import (LIKELIHOOD, ModelSpec, Priors, _cell_arrays, _dm_logp, _multinomial_logp,
-                         _random_factory, centred_entries)
+from calib.model import (ModelSpec, Priors, _cell_arrays, centred_entries, gather_pairs, gather_rows,
+                         split_likelihood)
 
 
 @dataclass(frozen=True)
@@ -131,7 +131,10 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
     with pm.Model(coords=coords) as model:
         counts = pm.Data("counts", arrays["counts"], dims=("cell", "gear"))
         present = pm.Data("present", arrays["present"], dims=("cell", "gear"))
-        weight = pm.Data("weight", arrays["weight"], dims=("cell", "gear"))
+        pm.Data("weight", arrays["weight"], dims=("cell", "gear"))
+        # Parameter-free terms computed once (calib.model.split_constant, calib.model.log_weight).
+        log_w = pm.Data("log_weight", arrays["log_weight"], dims=("cell", "gear"))
+        constant = pm.Data("split_constant", arrays["split_constant"], dims="cell")
         cell_species = pm.Data("cell_species", arrays["cell_species"], dims="cell")
         cell_combo = pm.Data("cell_combo", arrays["cell_combo"], dims="cell")
         species_pool = np.asarray(cells.species_pool, dtype=np.int64)
@@ -167,7 +170,7 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
             offset = pm.Deterministic(f"offset_{s}", full, dims=("gear", f"level_{s}"))
             pm.Deterministic(f"theta_by_{s}", theta[:, :, None] + offset[:, None, :],
                              dims=("gear", "species", f"level_{s}"))
-            shift = shift + offset[:, level].T
+            shift = shift + gather_rows(offset.T, level)
 
         if cc.numeric:
             sc = np.array([cc.scale[n] for n in cc.numeric])
@@ -184,19 +187,14 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
                 pm.Deterministic(f"theta_by_{s}", theta[:, :, None] + slope[:, k][:, None, None] * at[None, None, :],
                                  dims=("gear", "species", f"at_{s}"))
 
-        log_alpha = pt.log(pt.switch(present, weight, 1.0)) + theta[:, cell_species].T + shift
+        log_alpha = log_w + gather_rows(theta.T, cell_species) + shift
         if spec.overdispersion == "dirichlet-multinomial":
             eta = pm.Normal("log_kappa_mean", p.log_kappa_loc_mean, p.log_kappa_loc_sd, dims="combo")
             sigma = pm.HalfNormal("log_kappa_sd", p.log_kappa_spread_sd)
             z_kappa = pm.Normal("z_log_kappa", 0.0, 1.0, dims=("combo", "species"))
             log_kappa = pm.Deterministic("log_kappa", eta[:, None] + sigma * z_kappa, dims=("combo", "species"))
-            log_alpha = log_alpha + log_kappa[cell_combo, cell_species][:, None]
-            logp, overdispersed = _dm_logp, True
-        else:
-            logp, overdispersed = _multinomial_logp, False
-        pm.CustomDist(LIKELIHOOD, log_alpha, present, counts.sum(axis=1), logp=logp,
-                      random=_random_factory(overdispersed), signature="(g),(g),()->(g)", dtype="int64",
-                      observed=counts, dims=("cell", "gear"))
+            log_alpha = log_alpha + gather_pairs(log_kappa, cell_combo, cell_species)[:, None]
+        split_likelihood(log_alpha, present, counts, constant, spec.overdispersion == "dirichlet-multinomial")
     model._calib_covariate_spec = spec
     return model
 

@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from calib.cells import LengthCells
-from calib.model import LIKELIHOOD, Priors, _dm_logp, _multinomial_logp, _random_factory
+from calib.model import Priors, gather_pairs, gather_rows, log_weight, split_constant, split_likelihood
 
 
 @dataclass(frozen=True)
@@ -149,8 +149,8 @@ def build_length_model(lc: LengthCells, spec: LengthModelSpec = LengthModelSpec(
     """Build the PyMC length model for :class:`calib.cells.LengthCells` (see module docstring).
 
     Coordinates: gear, factor_gear, species, length (class lower bounds, mm), stratum (species x
-    class), basis, cell, combo, pool. Data containers: counts, present, weight (cell, gear),
-    cell_stratum, cell_combo (cell). Returns a ``pm.Model``; sample it with
+    class), basis, cell, combo, pool. Data containers: counts, present, weight, log_weight (cell, gear),
+    cell_stratum, cell_combo, split_constant (cell). Returns a ``pm.Model``; sample it with
     :func:`calib.model.sample`.
     """
     import pymc as pm
@@ -185,9 +185,12 @@ def build_length_model(lc: LengthCells, spec: LengthModelSpec = LengthModelSpec(
     with pm.Model(coords=coords) as model:
         counts = pm.Data("counts", np.asarray(cells.counts, dtype=np.int64), dims=("cell", "gear"))
         present = pm.Data("present", np.asarray(cells.present, dtype=bool), dims=("cell", "gear"))
-        weight = pm.Data("weight", np.asarray(cells.weight, dtype=float), dims=("cell", "gear"))
+        pm.Data("weight", np.asarray(cells.weight, dtype=float), dims=("cell", "gear"))
         cell_stratum = pm.Data("cell_stratum", np.asarray(cells.cell_species, dtype=np.int64), dims="cell")
         cell_combo = pm.Data("cell_combo", np.asarray(cells.cell_combo, dtype=np.int64), dims="cell")
+        # Parameter-free terms computed once (calib.model.split_constant, calib.model.log_weight).
+        log_w = pm.Data("log_weight", log_weight(cells.present, cells.weight), dims=("cell", "gear"))
+        constant = pm.Data("split_constant", split_constant(cells.counts, cells.present), dims="cell")
         stratum_species = np.asarray(lc.stratum_species, dtype=np.int64)
 
         mu = pm.Normal("mu", 0.0, p.theta_mu_sd, dims=("factor_gear", "pool"))
@@ -228,21 +231,15 @@ def build_length_model(lc: LengthCells, spec: LengthModelSpec = LengthModelSpec(
         grid = pt.set_subtensor(grid[:, stratum_species, len_pos], theta_class)
         pm.Deterministic("theta", grid, dims=("gear", "species", "length"))
 
-        log_alpha = pt.log(pt.switch(present, weight, 1.0)) + theta_class[:, cell_stratum].T
+        log_alpha = log_w + gather_rows(theta_class.T, cell_stratum)
         if spec.overdispersion == "dirichlet-multinomial":
             eta = pm.Normal("log_kappa_mean", p.log_kappa_loc_mean, p.log_kappa_loc_sd, dims="combo")
             spread = pm.HalfNormal("log_kappa_sd", p.log_kappa_spread_sd)
             z_kappa = pm.Normal("z_log_kappa", 0.0, 1.0, dims=("combo", "species"))
             log_kappa = pm.Deterministic("log_kappa", eta[:, None] + spread * z_kappa, dims=("combo", "species"))
-            log_alpha = log_alpha + log_kappa[cell_combo, stratum_species[cells.cell_species]][:, None]
-            logp, overdispersed = _dm_logp, True
-        else:
-            logp, overdispersed = _multinomial_logp, False
-        pm.CustomDist(
-            LIKELIHOOD, log_alpha, present, counts.sum(axis=1), logp=logp,
-            random=_random_factory(overdispersed), signature="(g),(g),()->(g)", dtype="int64",
-            observed=counts, dims=("cell", "gear"),
-        )
+            cell_sp = stratum_species[np.asarray(cells.cell_species, dtype=np.int64)]
+            log_alpha = log_alpha + gather_pairs(log_kappa, cell_combo, cell_sp)[:, None]
+        split_likelihood(log_alpha, present, counts, constant, spec.overdispersion == "dirichlet-multinomial")
     model._calib_length_spec = spec
     return model
 

@@ -501,3 +501,34 @@ def test_centred_coefficient_prior_matches_the_random_walk_density():
     flat = prior_theta_class(lc, LengthModelSpec(rw_sd=1e-9), n_draws=50, seed=0)
     per_species = [flat[:, 0, lc.stratum_species == s] for s in range(len(lc.species))]
     assert all(np.ptp(x, axis=1).max() < 1e-6 for x in per_species)
+
+
+def test_length_model_cell_log_likelihood_is_the_beta_binomial():
+    """The pointwise log-likelihood ``split`` (what LOO reads) is the full normalised probability of
+    each cell's split: with two gears the Dirichlet-multinomial split is the beta-binomial
+    (scipy.stats.betabinom; Johnson, Kemp & Kotz 2005, "Univariate Discrete Distributions", recalled
+    from memory), y_other | n ~ BetaBinomial(n, kappa w_other exp(theta), kappa w_ref). Guards the
+    parameter-free terms that the model takes as precomputed data."""
+    from scipy import stats
+
+    from calib.length_model import build_length_model
+
+    st = _study(n_groups=6)
+    hauls = st.hauls.assign(date=pd.to_datetime(st.hauls["date"]))
+    counts = pd.MultiIndex.from_product([hauls["haul_id"], SPECIES], names=["haul_id", "species"]).to_frame(
+        index=False).merge(st.catches, how="left").fillna({"count": 0})
+    lc = build_length_cells(hauls, counts, st.lengths, "seine", 20.0)
+    m = build_length_model(lc)
+    rng = np.random.default_rng(8)
+    point = {k: v + rng.normal(0.0, 0.5, size=np.shape(v)) for k, v in m.initial_point().items()}
+    logp = m.compile_fn(m.logp(vars=m.observed_RVs, sum=False)[0], inputs=m.value_vars,
+                        on_unused_input="ignore")(point)
+    outs = m.replace_rvs_by_values([m["theta_class"], m["log_kappa"]])
+    theta, log_kappa = m.compile_fn(outs, inputs=m.value_vars, on_unused_input="ignore")(point)
+    c = lc.cells
+    kappa = np.exp(log_kappa[c.cell_combo, lc.stratum_species[c.cell_species]])
+    y, w = np.asarray(c.counts), np.asarray(c.weight)
+    want = stats.betabinom.logpmf(y[:, 1], y.sum(axis=1), kappa * w[:, 1] * np.exp(theta[1, c.cell_species]),
+                                  kappa * w[:, 0])
+    assert c.n_cells > 50
+    np.testing.assert_allclose(logp, want, rtol=1e-10, atol=1e-10)
