@@ -57,17 +57,21 @@ class LengthModelSpec:
         factor constant in length) is allowed.
     overdispersion : "dirichlet-multinomial" (default) or "none", as in :class:`calib.model.ModelSpec`.
     priors : the constant model's :class:`calib.model.Priors` (mu, tau, kappa).
-    parametrization : "centred" (default: the coefficients are sampled directly, their prior
-        written as a density) or "non-centred" (level and random-walk steps as standard normals).
-        Same model, same posterior; on the test study (2 species x 30 groups x 15 classes) the
-        centred form sampled in 31 s against 91 s (31 against 65 leapfrog steps per draw).
+    parametrization : "non-centred" (default: level and random-walk steps as standard normals)
+        or "centred" (the coefficients are sampled directly, their prior written as a density).
+        Same model, same posterior; only NUTS's speed differs. Measured on a quiet machine,
+        2 chains x (500 + 500): on the data-rich test study (2 species x 30 groups, every fish
+        measured, 320 cells) 156 gradients per effective draw centred against 205 non-centred
+        (ESS per second 14 against 16); on 12 species x 20 pairs (2,753 cells, few fish per
+        class) 3,706 against 145, centred with R-hat 1.13 (benchmarks/fit_speed.py; the centred
+        form likely meets a funnel when classes hold few fish). Hence non-centred by default.
     """
 
     max_basis: int = 12
     rw_sd: float = 0.5
     overdispersion: str = "dirichlet-multinomial"
     priors: Priors = field(default_factory=Priors)
-    parametrization: str = "centred"
+    parametrization: str = "non-centred"
 
     def __post_init__(self):
         if self.parametrization not in ("centred", "non-centred"):
@@ -201,7 +205,8 @@ def build_length_model(lc: LengthCells, spec: LengthModelSpec = LengthModelSpec(
             # beta itself is sampled; its prior written as a density: mean(beta) ~ Normal(mu, tau),
             # steps beta_k - beta_(k-1) ~ Normal(0, sigma) (a linear change of variables from the
             # non-centred form with constant Jacobian: the same prior). Padding coefficients ~ N(0, 1).
-            # Measured: about three times as fast as the non-centred form on the test study.
+            # Measured (quiet machine): about as fast as the non-centred form on data-rich studies, far
+            # slower when classes hold few fish (see LengthModelSpec).
             beta = pm.Flat("beta", dims=("factor_gear", "species", "basis"))
             mean_b = (beta * coef_mask[None]).sum(axis=2) / n_basis[None, :]
             lp = pm.logp(pm.Normal.dist(loc, tau[:, None]), mean_b).sum()

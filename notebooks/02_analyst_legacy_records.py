@@ -23,8 +23,11 @@
 # and the seine favours them. This factor set has one factor per species and gear over all
 # sizes, so this notebook converts the legacy records with those species-level factors.
 # Length-resolved conversion (a factor per length class, applied to each record's measured
-# length composition) arrives with the length model (`calib fit --length-bin`); until then a
-# legacy size composition is converted as if the gears differed by species only.
+# length composition) needs a length factor set: `calib fit --length-bin 10 --lengths ...`, then
+# `calib convert --lengths ...` (user guide, section 2). On the demo data,
+# `calib fit --compare --length-bin 10` prefers the length form clearly (docs/user-guide.md), so
+# the species-level conversion below treats a legacy size composition as if the gears differed by
+# species only: a simplification to keep this notebook quick, not a recommendation.
 #
 # The data are invented. Factors hold only for the gears, sizes, habitats and seasons of the
 # calibration study; defer to the survey program's standards and to qualified review.

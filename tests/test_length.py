@@ -480,7 +480,7 @@ def test_centred_coefficient_prior_matches_the_random_walk_density():
     counts = pd.MultiIndex.from_product([hauls["haul_id"], SPECIES], names=["haul_id", "species"]).to_frame(
         index=False).merge(st.catches, how="left").fillna({"count": 0})
     lc = build_length_cells(hauls, counts, st.lengths, "seine", 20.0)
-    spec = LengthModelSpec()
+    spec = LengthModelSpec(parametrization="centred")
     m = build_length_model(lc, spec)
     _, n_basis, k_max = _basis_blocks(lc, spec)
     rng = np.random.default_rng(4)

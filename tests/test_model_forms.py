@@ -48,7 +48,7 @@ def _compare(study, tmp_path, **kw):
 def test_loo_prefers_the_length_model_when_the_factor_changes_with_length(tmp_path):
     # The trawl lets fish under about 75 mm through (l50 75 mm, selection range 30 mm) while the
     # seine keeps everything over 25 mm: the true factor falls several-fold over the species'
-    # length range. On this study LOO preferred the length model by 60.2 log-units (se 9.3).
+    # length range. On this study LOO preferred the length model by 60.1 log-units (se 9.4).
     study = _length_study({"seine": (25, 10), "trawl": (75, 30)})
     fs, comparison = _compare(study, tmp_path)
     table = comparison.table.set_index("variant")
@@ -64,7 +64,7 @@ def test_loo_prefers_the_length_model_when_the_factor_changes_with_length(tmp_pa
 
 def test_loo_does_not_prefer_the_length_model_when_the_factor_is_constant(tmp_path):
     # Neither gear selects by length: the length model can only add noise. LOO must not call it
-    # clearly better (on this study: difference 1.4, se 0.7). The constant form kept is refitted to
+    # clearly better (on this study: difference 0.9, se 0.6). The constant form kept is refitted to
     # all counted fish: an ordinary factor set (one row per species x gear, no length classes).
     study = _length_study(None)
     fs, comparison = _compare(study, tmp_path)
