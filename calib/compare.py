@@ -385,10 +385,11 @@ def covariates_on(view, cc):
 def _sample_split(pm_model, *, draws, tune, chains, seed, progressbar):
     """Sample a model only for its pointwise split log-likelihood (no prior draws)."""
     from calib import model as model_mod
+    from calib.diagnostics import divergences
 
     idata = model_mod.sample(pm_model, draws=draws, tune=tune, chains=chains, seed=seed, progressbar=progressbar,
                              target_accept=0.9, prior_draws=0)
-    return idata.log_likelihood["split"], int(idata.sample_stats["diverging"].sum())
+    return idata.log_likelihood["split"], int(divergences(idata))
 
 
 def compare_models(hauls, catches=None, *, reference: str, length_bin: float | None = None,

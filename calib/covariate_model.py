@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from calib.cells import Cells, CovariateCells
-from calib.model import (ModelSpec, Priors, _cell_arrays, centred_entries, gather_pairs, gather_rows,
+from calib.model import (ModelSpec, Priors, _cell_arrays, cell_coords, centred_entries, gather_pairs, gather_rows,
                          split_likelihood)
 
 
@@ -105,20 +105,9 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
     import pytensor.tensor as pt
 
     cells = cc.cells
-    if cells.n_gears < 2:
-        raise ValueError("the model needs at least two gears (the reference and one other)")
-    if cells.n_cells == 0:
-        raise ValueError("no calibration cells with a non-zero total: nothing to fit")
+    coords = cell_coords(cells)
     base = spec.base_spec()
     p = spec.priors
-    coords = {
-        "gear": list(cells.gears),
-        "factor_gear": list(cells.gears[1:]),
-        "species": list(cells.species),
-        "cell": np.arange(cells.n_cells),
-        "combo": list(cells.combos),
-        "pool": list(cells.pool_groups),
-    }
     for c in cc.categorical:
         coords[f"level_{_safe(c)}"] = list(cc.levels[c])
         coords[f"other_level_{_safe(c)}"] = list(cc.levels[c][1:])

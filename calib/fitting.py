@@ -172,7 +172,7 @@ def fit(
                              interval=interval, rules=rules, progressbar=progressbar,
                              min_class_fish=length_min_fish)
     if covariates:
-        if method != "hierarchical" or pooling != "partial" or length_bin is not None:
+        if method != "hierarchical" or pooling != "partial":
             raise ValueError("--covariate works with the hierarchical method and partial pooling, without "
                              "--length-bin")
         from calib.covariate_fit import fit_with_covariates

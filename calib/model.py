@@ -482,6 +482,23 @@ def _cell_arrays(cells: Cells, combos: list[str]) -> dict[str, np.ndarray]:
     }
 
 
+def cell_coords(cells: Cells) -> dict:
+    """The coordinates every split model over :class:`Cells` shares (gear, factor_gear, species,
+    cell, combo, pool), after checking there is something to fit (ValueError otherwise)."""
+    if cells.n_gears < 2:
+        raise ValueError("the model needs at least two gears (the reference and one other)")
+    if cells.n_cells == 0:
+        raise ValueError("no calibration cells with a non-zero total: nothing to fit")
+    return {
+        "gear": list(cells.gears),
+        "factor_gear": list(cells.gears[1:]),
+        "species": list(cells.species),
+        "cell": np.arange(cells.n_cells),
+        "combo": list(cells.combos),
+        "pool": list(cells.pool_groups),
+    }
+
+
 def build_model(cells: Cells, spec: ModelSpec = ModelSpec()):
     """Build the PyMC model of the catch split for ``cells``.
 
@@ -495,19 +512,8 @@ def build_model(cells: Cells, spec: ModelSpec = ModelSpec()):
     import pymc as pm
     import pytensor.tensor as pt
 
-    if cells.n_gears < 2:
-        raise ValueError("the model needs at least two gears (the reference and one other)")
-    if cells.n_cells == 0:
-        raise ValueError("no calibration cells with a non-zero total: nothing to fit")
+    coords = cell_coords(cells)
     p = spec.priors
-    coords = {
-        "gear": list(cells.gears),
-        "factor_gear": list(cells.gears[1:]),
-        "species": list(cells.species),
-        "cell": np.arange(cells.n_cells),
-        "combo": list(cells.combos),
-        "pool": list(cells.pool_groups),
-    }
     arrays = _cell_arrays(cells, list(cells.combos))
     with pm.Model(coords=coords) as model:
         counts = pm.Data("counts", arrays["counts"], dims=("cell", "gear"))

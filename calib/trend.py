@@ -116,6 +116,16 @@ CAUTION = (
 # ----------------------------------------------------------------------------- the slope
 
 
+def _in_years(years: np.ndarray, year_from: int | None, year_to: int | None) -> np.ndarray:
+    """Mask of ``years`` inside [year_from, year_to] (an open end when None)."""
+    keep = np.ones(len(years), dtype=bool)
+    if year_from is not None:
+        keep &= years >= year_from
+    if year_to is not None:
+        keep &= years <= year_to
+    return keep
+
+
 def loglinear_slope(y: np.ndarray, years: np.ndarray, max_iter: int = 100,
                     tol: float = 1e-10) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Quasi-Poisson log-link slope per year of each row of ``y`` on ``years``.
@@ -389,11 +399,7 @@ def trend(converted, *, year_from: int | None = None, year_to: int | None = None
                            uncertainty="conversion", exact_max_hauls=exact_max_hauls, incomplete=incomplete,
                            where=where, draws_where=draws_where, record_factors=rf)
     years = np.asarray(sd.years)
-    in_window = np.ones(len(years), dtype=bool)
-    if year_from is not None:
-        in_window &= years >= year_from
-    if year_to is not None:
-        in_window &= years <= year_to
+    in_window = _in_years(years, year_from, year_to)
     if not in_window.any():
         raise InputError([Problem(where, None, "year", f"no records in the years {year_from}-{year_to} "
                                   f"(the records cover {years.min()}-{years.max()})",
@@ -682,11 +688,7 @@ def source_agreement(source_draws: dict, *, year_from=None, year_to=None, interv
     yearly, strata = {}, {}
     for lab, sd in source_draws.items():
         years = np.asarray(sd.years)
-        window = np.ones(len(years), dtype=bool)
-        if year_from is not None:
-            window &= years >= year_from
-        if year_to is not None:
-            window &= years <= year_to
+        window = _in_years(years, year_from, year_to)
         est, val = sd.cube("estimate"), sd.cube("value")
         for i, sp in enumerate(sd.species):
             keep = window & np.isfinite(est[i])
