@@ -729,3 +729,19 @@ def build_covariate_cells(
 def _list_text(items, limit: int = 12) -> str:
     items = [str(x) for x in items]
     return ", ".join(items[:limit]) + (f", ... ({len(items)} in all)" if len(items) > limit else "")
+
+
+def species_view(lc):
+    """The length-class cells of :class:`calib.cells.LengthCells` with theta per species only.
+
+    Same cells (group x species x length class of measured fish, same counts, weights with the
+    measured-fraction offset, same order), but every class of a species points at the species:
+    a model fitted to this view has a factor that does not change with length. So the constant
+    model fitted here and the length model fitted to ``lc`` are scored on the same observations.
+    """
+    from dataclasses import replace
+
+    cells = lc.cells
+    stratum_species = np.asarray(lc.stratum_species, dtype=np.int64)
+    return replace(cells, species=list(lc.species), cell_species=stratum_species[np.asarray(cells.cell_species)],
+                   species_pool=np.asarray(lc.species_pool, dtype=np.int64))

@@ -28,6 +28,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from calib.cells import species_view
+
 # A difference counts as clear when it exceeds both 4 and twice its standard error
 # (common practice, no source; Vehtari et al. 2017 warn that small differences are noisy).
 CLEAR_DIFFERENCE = 4.0
@@ -344,25 +346,9 @@ def spread_sentence(spread: pd.DataFrame, names: list[str]) -> str:
 MODEL_VARIANTS = ("constant", "length", "covariate")
 
 
-def species_view(lc):
-    """The length-class cells of :class:`calib.cells.LengthCells` with theta per species only.
-
-    Same cells (group x species x length class of measured fish, same counts, weights with the
-    measured-fraction offset, same order), but every class of a species points at the species:
-    a model fitted to this view has a factor that does not change with length. So the constant
-    model fitted here and the length model fitted to ``lc`` are scored on the same observations.
-    """
-    from dataclasses import replace
-
-    cells = lc.cells
-    stratum_species = np.asarray(lc.stratum_species, dtype=np.int64)
-    return replace(cells, species=list(lc.species), cell_species=stratum_species[np.asarray(cells.cell_species)],
-                   species_pool=np.asarray(lc.species_pool, dtype=np.int64))
-
-
 def covariates_on(view, cc):
     """:class:`calib.cells.CovariateCells` for other cells of the same calibration groups (e.g.
-    :func:`species_view`): each cell takes its group's covariate values from ``cc`` (the group
+    :func:`calib.cells.species_view`): each cell takes its group's covariate values from ``cc`` (the group
     cells' covariates), with the same levels, baseline, centring and scale."""
     from dataclasses import replace
 
@@ -400,7 +386,7 @@ def compare_models(hauls, catches=None, *, reference: str, length_bin: float | N
     ``length_bin`` every variant is scored on the same observations: the split of the measured fish
     of each group x species x length class (the length model's cells), the constant model and (with
     ``covariates``) the covariate model being fitted to those cells with a factor that does not
-    change with length (:func:`species_view`). Without ``length_bin`` the constant and covariate
+    change with length (:func:`calib.cells.species_view`). Without ``length_bin`` the constant and covariate
     variants are scored on the split of each group x species total.
 
     The variant kept is the one PSIS-LOO clearly prefers (else 'constant', the simpler model), or

@@ -503,6 +503,59 @@ def test_centred_coefficient_prior_matches_the_random_walk_density():
     assert all(np.ptp(x, axis=1).max() < 1e-6 for x in per_species)
 
 
+def test_spectral_components_have_the_random_walk_prior():
+    """The default forms write the centred random walk of the coefficients in its eigen-coordinates
+    (calib.length_model.spectral_basis). Same prior: with r_1 = 0 and steps ~ N(0, 1), the centred
+    walk c = (I - 11'/K) r has covariance P^+ (P = D'D, D first differences), so theta's covariance
+    B Cov(c) B' must equal Phi Phi' for Phi = spectral_basis(B) (linear algebra of the first-order
+    random walk; Rue & Held 2005, "Gaussian Markov Random Fields", ch. 3, recalled from memory)."""
+    from calib.length_model import spectral_basis, spline_basis
+
+    for n_classes, max_basis in ((18, 12), (7, 12), (3, 12), (12, 4)):
+        B = spline_basis(np.arange(n_classes) * 10.0 + 20.0, 10.0, max_basis)
+        k = B.shape[1]
+        walk = np.tril(np.ones((k, k)), -1)[:, : k - 1]        # r = walk @ steps, r_1 = 0
+        centre = np.eye(k) - np.ones((k, k)) / k
+        cov_walk = B @ centre @ walk @ walk.T @ centre.T @ B.T
+        phi = spectral_basis(B)
+        assert phi.shape == (n_classes, k - 1)
+        np.testing.assert_allclose(phi @ phi.T, cov_walk, atol=1e-10)
+        # the components are the walk's deviations from its mean: they never move the level
+        np.testing.assert_allclose(np.linalg.lstsq(B, phi, rcond=None)[0].sum(axis=0), 0.0, atol=1e-10)
+
+
+def test_default_and_non_centred_forms_have_the_same_prior_on_theta():
+    """"auto" (levels centred where the data are informative) and "non-centred" are the same model:
+    their prior draws of theta_class agree (two-sample KS test, scipy.stats.ks_2samp, p > 0.001 for
+    every stratum), and on the data-rich test study "auto" centres the levels while a 2-group study
+    keeps them non-centred (calib.model.centred_entries' rule applied per species)."""
+    import pymc as pm
+    from scipy import stats
+
+    from calib.length_model import LengthModelSpec, build_length_model, level_centring
+
+    def length_cells(n_groups, n_measured):
+        st = _study(n_groups=n_groups, n_measured=n_measured)
+        hauls = st.hauls.assign(date=pd.to_datetime(st.hauls["date"]))
+        counts = pd.MultiIndex.from_product([hauls["haul_id"], SPECIES], names=["haul_id", "species"]).to_frame(
+            index=False).merge(st.catches, how="left").fillna({"count": 0})
+        return build_length_cells(hauls, counts, st.lengths, "seine", 20.0)
+
+    rich = length_cells(30, 100_000)
+    assert level_centring(rich, LengthModelSpec()).all()
+    assert not level_centring(rich, LengthModelSpec(parametrization="non-centred")).any()
+    sparse = length_cells(2, 10)
+    assert not level_centring(sparse, LengthModelSpec()).any()
+    draws = {}
+    for form in ("auto", "non-centred"):
+        with build_length_model(rich, LengthModelSpec(parametrization=form)):
+            prior = pm.sample_prior_predictive(draws=3000, var_names=["theta_class"], random_seed=11).prior
+        draws[form] = prior["theta_class"].values[0, :, 1, :]
+    p_values = [stats.ks_2samp(draws["auto"][:, j], draws["non-centred"][:, j]).pvalue
+                for j in range(draws["auto"].shape[1])]
+    assert min(p_values) > 0.001, p_values
+
+
 def test_length_model_cell_log_likelihood_is_the_beta_binomial():
     """The pointwise log-likelihood ``split`` (what LOO reads) is the full normalised probability of
     each cell's split: with two gears the Dirichlet-multinomial split is the beta-binomial

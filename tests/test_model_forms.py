@@ -3,7 +3,7 @@
 PSIS-LOO (Vehtari, Gelman & Gabry 2017, Statistics and Computing 27, "Practical Bayesian model
 evaluation using leave-one-out cross-validation and WAIC") on the same observations: with
 --length-bin, the split of the measured fish of each group x species x length class, the constant
-model being fitted to those same cells (calib.compare.species_view).
+model being fitted to those same cells (calib.cells.species_view).
 
 Fits: PyMC NUTS 2 chains x (250 tune + 250 draws); about 100 s in all on a quiet 2-core machine.
 """
@@ -108,7 +108,7 @@ def test_covariate_compare_from_the_command_line_and_model_choice(tmp_path, caps
 
 def test_species_view_keeps_the_cells_and_points_classes_at_their_species(tmp_path):
     from calib import cells as cells_mod
-    from calib.compare import species_view
+    from calib.cells import species_view
     from calib.tables import complete_zeros, load_tables
 
     study = _length_study(None)
