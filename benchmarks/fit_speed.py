@@ -13,8 +13,10 @@ Contenders, all 2 chains x (1,000 tune + 1,000 draws) unless --draws/--tune say 
 * ``plain``: the same model written the obvious way -- ``pm.BetaBinomial`` on every cell,
   non-centred hierarchy (at the length size the P-spline in its textbook non-centred form),
   PyMC's default NUTS with its default cores (on 2 CPUs: one job, chains one after the other);
-* ``calib``: ``calib.model.build_model`` + ``calib.model.sample`` as ``calib fit`` runs them
-  (masked Dirichlet-multinomial log-density, per-entry centring, chains in parallel);
+* ``calib``: ``calib.model.build_model`` (``calib.length_model.build_length_model`` at the length
+  size) + ``calib.model.sample`` as ``calib fit`` runs them (masked Dirichlet-multinomial
+  log-density, per-entry centring; at the length size the random walk in its eigen-coordinates;
+  chains in parallel);
 * ``calib+nutpie``: the same model sampled by nutpie (numba backend).
 
 Each is run cold (a fresh model object: graph compilation included) and warm (the same model
@@ -26,8 +28,9 @@ density and gradient, and the gradient evaluations per effective draw.
 
     python benchmarks/fit_speed.py                # both sizes (tens of minutes on 2 cores)
     python benchmarks/fit_speed.py --size species --draws 500 --tune 500   # quicker look
-    python benchmarks/fit_speed.py --size length --pairs 20 --draws 500 --tune 500 --skip-nutpie
-        # the length size as measured in docs/performance.md (plain takes hours at 150 pairs)
+    python benchmarks/fit_speed.py --size length --skip-nutpie
+        # the length size as measured in docs/performance.md (about an hour on 2 cores, most of it
+        # the plain fits; --pairs 20 --draws 500 --tune 500 for a quicker look)
 """
 
 from __future__ import annotations
@@ -306,6 +309,9 @@ def main(argv=None) -> int:
             print(f"\n== size 'length': 12 species x {args.pairs} pairs x {per_sp.min()} to {per_sp.max()} length "
                   f"classes ({lc.bin_mm:g} mm; {len(lc.stratum_species)} species x classes): {cells.n_cells} cells "
                   "with a non-zero total")
+            centred = lm.level_centring(lc, lm.LengthModelSpec())
+            print(f"  calib writes {int(centred.sum())} of {centred.size} species levels centred "
+                  "(length_model.level_centring)")
             make_plain = lambda: plain_length_model(lc)  # noqa: E731
             make_calib = lambda: lm.build_length_model(lc, lm.LengthModelSpec())  # noqa: E731
         params = PARAMS[size]
