@@ -39,7 +39,7 @@ import numpy as np
 
 from calib.cells import Cells, CovariateCells
 from calib.model import (ModelSpec, Priors, _cell_arrays, cell_coords, centred_entries, gather_pairs, gather_rows,
-                         split_likelihood)
+                         per_entry_normal, split_likelihood)
 
 
 @dataclass(frozen=True)
@@ -131,11 +131,7 @@ def build_covariate_model(cc: CovariateCells, spec: CovariateModelSpec = Covaria
         mu = pm.Normal("mu", 0.0, p.theta_mu_sd, dims=("factor_gear", "pool"))
         tau = pm.HalfNormal("tau", p.theta_tau_sd, dims="factor_gear")
         centred = pm.Data("centred", centred_entries(cells, base), dims=("factor_gear", "species"))
-        loc = mu[:, species_pool]
-        scale = pt.broadcast_to(tau[:, None], loc.shape)
-        theta_raw = pm.Normal("theta_raw", pt.switch(centred, loc, 0.0), pt.switch(centred, scale, 1.0),
-                              dims=("factor_gear", "species"))
-        theta_other = pt.switch(centred, theta_raw, loc + scale * theta_raw)
+        theta_other = per_entry_normal("theta_raw", mu[:, species_pool], tau, centred)
         theta = pm.Deterministic(
             "theta", pt.concatenate([pt.zeros((1, n_sp), dtype="float64"), theta_other], axis=0),
             dims=("gear", "species"))

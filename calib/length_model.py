@@ -40,7 +40,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from calib.cells import LengthCells
-from calib.model import Priors, gather_pairs, gather_rows, log_weight, split_constant, split_likelihood
+from calib.model import (Priors, gather_pairs, gather_rows, log_weight, per_entry_normal, split_constant,
+                         split_likelihood)
 
 
 PARAMETRIZATION = ("auto", "non-centred", "centred")
@@ -89,8 +90,7 @@ class LengthModelSpec:
 
     def __post_init__(self):
         if self.parametrization not in PARAMETRIZATION:
-            raise ValueError("parametrization must be 'auto', 'centred' or 'non-centred', "
-                             f"not {self.parametrization!r}")
+            raise ValueError(f"parametrization must be one of {PARAMETRIZATION}, not {self.parametrization!r}")
 
     def to_dict(self) -> dict:
         d = {
@@ -177,13 +177,16 @@ def spectral_basis(basis: np.ndarray) -> np.ndarray:
     return basis @ (u[:, order] / np.sqrt(lam[order]))
 
 
-def spectral_blocks(lc: LengthCells, spec) -> np.ndarray:
+def spectral_blocks(stratum_species, basis: np.ndarray, n_basis: np.ndarray) -> np.ndarray:
     """(stratum, component): each species x class's row of :func:`spectral_basis` for its species,
-    padded with zeros to the largest K - 1 (padding components do not enter theta)."""
-    basis, n_basis, k_max = _basis_blocks(lc, spec)
-    phi = np.zeros((len(lc.stratum_species), max(k_max - 1, 0)))
-    for s in range(len(lc.species)):
-        rows = np.flatnonzero(lc.stratum_species == s)
+    padded with zeros to the largest K - 1 (padding components do not enter theta).
+
+    stratum_species : species index of each stratum; basis, n_basis : per stratum its B-spline row
+    and per species its K (as built for the model)."""
+    stratum_species = np.asarray(stratum_species)
+    phi = np.zeros((len(stratum_species), max(basis.shape[1] - 1, 0)))
+    for s in range(len(n_basis)):
+        rows = np.flatnonzero(stratum_species == s)
         if len(rows):
             b = spectral_basis(basis[np.ix_(rows, np.arange(n_basis[s]))])
             phi[np.ix_(rows, np.arange(b.shape[1]))] = b
@@ -285,12 +288,9 @@ def build_length_model(lc: LengthCells, spec: LengthModelSpec = LengthModelSpec(
             # a_j = sigma * z_j, z_j ~ N(0, 1), always non-centred (centring the well-informed
             # components diverged; see LengthModelSpec). Each level is centred or not as the constant
             # model's theta (level_centring).
-            phi = spectral_blocks(lc, spec)
+            phi = spectral_blocks(lc.stratum_species, basis, n_basis)
             centred = pm.Data("level_centred", level_centring(lc, spec), dims=("factor_gear", "species"))
-            scale = pt.broadcast_to(tau[:, None], loc.shape)
-            level_raw = pm.Normal("level_raw", pt.switch(centred, loc, 0.0), pt.switch(centred, scale, 1.0),
-                                  dims=("factor_gear", "species"))
-            level = pm.Deterministic("level", pt.switch(centred, level_raw, loc + scale * level_raw),
+            level = pm.Deterministic("level", per_entry_normal("level_raw", loc, tau, centred),
                                      dims=("factor_gear", "species"))
             theta_cls = level[:, stratum_species]
             if phi.shape[1]:

@@ -482,6 +482,22 @@ def _cell_arrays(cells: Cells, combos: list[str]) -> dict[str, np.ndarray]:
     }
 
 
+def per_entry_normal(name: str, loc, tau, centred, dims=("factor_gear", "species")):
+    """Normal(loc, tau[:, None]) values (factor_gear, species), each entry written for the sampler
+    centred or non-centred as ``centred`` says (:func:`centred_entries`).
+
+    One free variable ``name``: centred entries hold the value itself, ~ Normal(loc, tau); the
+    others a standard normal z with value = loc + tau * z. Same prior either way. Returns the value
+    (pytensor); call inside a ``pm.Model`` context.
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    scale = pt.broadcast_to(tau[:, None], loc.shape)
+    raw = pm.Normal(name, pt.switch(centred, loc, 0.0), pt.switch(centred, scale, 1.0), dims=dims)
+    return pt.switch(centred, raw, loc + scale * raw)
+
+
 def cell_coords(cells: Cells) -> dict:
     """The coordinates every split model over :class:`Cells` shares (gear, factor_gear, species,
     cell, combo, pool), after checking there is something to fit (ValueError otherwise)."""
@@ -530,18 +546,7 @@ def build_model(cells: Cells, spec: ModelSpec = ModelSpec()):
             mu = pm.Normal("mu", 0.0, p.theta_mu_sd, dims=("factor_gear", "pool"))
             tau = pm.HalfNormal("tau", p.theta_tau_sd, dims="factor_gear")
             centred = pm.Data("centred", centred_entries(cells, spec), dims=("factor_gear", "species"))
-            loc = mu[:, species_pool]
-            scale = pt.broadcast_to(tau[:, None], loc.shape)
-            # One variable, two parametrisations chosen per entry: centred entries hold
-            # theta itself, ~ Normal(mu, tau); the others a standard normal z with
-            # theta = mu + tau * z (non-centred).
-            theta_raw = pm.Normal(
-                "theta_raw",
-                pt.switch(centred, loc, 0.0),
-                pt.switch(centred, scale, 1.0),
-                dims=("factor_gear", "species"),
-            )
-            theta_other = pt.switch(centred, theta_raw, loc + scale * theta_raw)
+            theta_other = per_entry_normal("theta_raw", mu[:, species_pool], tau, centred)
         else:
             theta_other = pm.Normal("theta_free", 0.0, p.unpooled_theta_sd, dims=("factor_gear", "species"))
         n_species = len(cells.species)

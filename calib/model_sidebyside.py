@@ -221,6 +221,8 @@ def build_model(data: SitePeriodData, spec: SideBySideSpec = SideBySideSpec()):
     import pymc as pm
     import pytensor.tensor as pt
 
+    from calib.model import per_entry_normal
+
     if data.n_gears < 2:
         raise ValueError("the model needs at least two gears (the reference and one other)")
     if data.n_obs == 0:
@@ -250,11 +252,7 @@ def build_model(data: SitePeriodData, spec: SideBySideSpec = SideBySideSpec()):
             mu = pm.Normal("mu", 0.0, p.theta_mu_sd, dims=("factor_gear", "pool"))
             tau = pm.HalfNormal("tau", p.theta_tau_sd, dims="factor_gear")
             centred = pm.Data("centred", a["centred"], dims=("factor_gear", "species"))
-            loc = mu[:, species_pool]
-            scale = pt.broadcast_to(tau[:, None], loc.shape)
-            theta_raw = pm.Normal("theta_raw", pt.switch(centred, loc, 0.0), pt.switch(centred, scale, 1.0),
-                                  dims=("factor_gear", "species"))
-            theta_other = pt.switch(centred, theta_raw, loc + scale * theta_raw)
+            theta_other = per_entry_normal("theta_raw", mu[:, species_pool], tau, centred)
         else:
             theta_other = pm.Normal("theta_free", 0.0, p.unpooled_theta_sd, dims=("factor_gear", "species"))
         theta = pm.Deterministic(
